@@ -1,0 +1,1 @@
+"""HTTP service of honing: FastAPI app, stores and background refits."""

@@ -1,0 +1,1 @@
+"""Thin HTTP client and command line of honing."""

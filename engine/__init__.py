@@ -1,0 +1,1 @@
+"""Pure numerics of honing: priors, polynomial surrogates, likelihood, sampling and design."""

@@ -1,0 +1,567 @@
+"""Redis backend of the `Store` contract: one Lua script per atomic step.
+
+Scripts build per-run key names from the calibration's prefix (passed in ARGV). Every such key
+carries the same ``{<id>}`` hash tag as the declared KEYS, so on Redis Cluster each script still
+touches one slot only. Numbers that must stay exact (times) are formatted in Python and passed
+as strings, since Lua would print them with 14 significant digits.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Iterator
+from contextlib import contextmanager
+from typing import Any
+
+import redis
+from honing.api.store.base import (
+    CalibrationMeta,
+    LeaseResult,
+    NewCalibration,
+    RunRecord,
+    StoreUnavailable,
+)
+from honing.api.store.keys import REFIT_DUE, CalibrationKeys
+
+__all__ = ["RedisStore"]
+
+log = logging.getLogger(__name__)
+
+_CHUNK = 1000
+
+# Shared by every script that changes runs: expire overdue leases first.
+# Each leased run whose expiry is <= now becomes "expired" (epoch + 1, so a writer holding the
+# old epoch must re-read), its point goes to the back of the requeue list.
+_EXPIRE_FN = """
+local function expire_overdue(meta, leases, requeue, run_prefix, now)
+  local due = redis.call('ZRANGEBYSCORE', leases, '-inf', now)
+  for _, rid in ipairs(due) do
+    local rk = run_prefix .. rid
+    if redis.call('HGET', rk, 'state') == 'leased' then
+      redis.call('HSET', rk, 'state', 'expired')
+      redis.call('HINCRBY', rk, 'epoch', 1)
+      redis.call('RPUSH', requeue, redis.call('HGET', rk, 'point'))
+      redis.call('HINCRBY', meta, 'leased', -1)
+    end
+    redis.call('ZREM', leases, rid)
+  end
+  return #due
+end
+"""
+
+# KEYS: 1 meta, 2 requeue, 3 leases
+# ARGV: 1 run key prefix, 2 now
+# Returns the number of leases expired, or -1 when the calibration does not exist.
+_EXPIRE = (
+    _EXPIRE_FN
+    + """
+if redis.call('EXISTS', KEYS[1]) == 0 then return -1 end
+return expire_overdue(KEYS[1], KEYS[3], KEYS[2], ARGV[1], ARGV[2])
+"""
+)
+
+# KEYS: 1 meta, 2 proposals, 3 requeue, 4 leases, 5 runs
+# ARGV: 1 run key prefix, 2 now, 3 count, 4 worker, 5 lease expiry time, 6 max_runs
+# Expires overdue leases, then hands out up to count points: re-queued ones first, then the
+# current proposals, never more than max_runs - done - failed - leased. Each new run gets
+# id "r<seq>", state "leased", epoch 1.
+# Returns {expired, rid_1, seq_1, point_1, rid_2, ...}, or {-1} when the calibration is gone.
+_LEASE = (
+    _EXPIRE_FN
+    + """
+local meta = KEYS[1]
+if redis.call('EXISTS', meta) == 0 then return {-1} end
+local out = {expire_overdue(meta, KEYS[4], KEYS[3], ARGV[1], ARGV[2])}
+local c = redis.call('HMGET', meta, 'done', 'failed', 'leased')
+local room = tonumber(ARGV[6]) - tonumber(c[1]) - tonumber(c[2]) - tonumber(c[3])
+local n = math.min(tonumber(ARGV[3]), room)
+for _ = 1, n do
+  local point = redis.call('LPOP', KEYS[3])
+  if not point then point = redis.call('LPOP', KEYS[2]) end
+  if not point then break end
+  local seq = redis.call('HINCRBY', meta, 'seq', 1)
+  local rid = 'r' .. seq
+  redis.call('HSET', ARGV[1] .. rid, 'run_id', rid, 'seq', seq, 'state', 'leased',
+             'epoch', 1, 'worker', ARGV[4], 'leased_at', ARGV[2],
+             'lease_expires_at', ARGV[5], 'point', point, 'imported', '0')
+  redis.call('ZADD', KEYS[4], ARGV[5], rid)
+  redis.call('RPUSH', KEYS[5], rid)
+  redis.call('HINCRBY', meta, 'leased', 1)
+  table.insert(out, rid)
+  table.insert(out, seq)
+  table.insert(out, point)
+end
+return out
+"""
+)
+
+# KEYS: 1 meta, 2 requeue, 3 leases, 4 finished, 5 the run's hash
+# ARGV: 1 run key prefix, 2 now, 3 run id, 4 expected epoch, 5 new state ("done"/"failed"),
+#       6 result JSON, 7 completion time
+# Expires overdue leases, then writes the result only if the run's epoch is still the one the
+# caller read (fencing: a run that expired or finished meanwhile has a new epoch).
+# Returns 1 written, 0 stale epoch, -1 no calibration, -2 no such run.
+_FINISH = (
+    _EXPIRE_FN
+    + """
+local meta = KEYS[1]
+if redis.call('EXISTS', meta) == 0 then return -1 end
+expire_overdue(meta, KEYS[3], KEYS[2], ARGV[1], ARGV[2])
+local rk = KEYS[5]
+local state = redis.call('HGET', rk, 'state')
+if not state then return -2 end
+if redis.call('HGET', rk, 'epoch') ~= ARGV[4] then return 0 end
+if state == 'done' or state == 'failed' then return 0 end
+if state == 'leased' then
+  redis.call('ZREM', KEYS[3], ARGV[3])
+  redis.call('HINCRBY', meta, 'leased', -1)
+end
+redis.call('HSET', rk, 'state', ARGV[5], 'result', ARGV[6], 'completed_at', ARGV[7])
+redis.call('HINCRBY', rk, 'epoch', 1)
+redis.call('HINCRBY', meta, ARGV[5], 1)
+redis.call('RPUSH', KEYS[4], ARGV[3])
+return 1
+"""
+)
+
+# KEYS: 1 meta, 2 runs, 3 finished
+# ARGV: 1 run key prefix, 2 now, then point JSON and result JSON for each imported run
+# Adds every run as "done" (imported = 1) in one step. Returns the new run ids, or {-1}.
+_IMPORT = """
+local meta = KEYS[1]
+if redis.call('EXISTS', meta) == 0 then return {-1} end
+local out = {}
+for i = 3, #ARGV, 2 do
+  local seq = redis.call('HINCRBY', meta, 'seq', 1)
+  local rid = 'r' .. seq
+  redis.call('HSET', ARGV[1] .. rid, 'run_id', rid, 'seq', seq, 'state', 'done', 'epoch', 1,
+             'worker', '', 'completed_at', ARGV[2], 'point', ARGV[i], 'result', ARGV[i + 1],
+             'imported', '1')
+  redis.call('RPUSH', KEYS[2], rid)
+  redis.call('RPUSH', KEYS[3], rid)
+  redis.call('HINCRBY', meta, 'done', 1)
+  table.insert(out, rid)
+end
+return out
+"""
+
+# KEYS: 1 meta, 2 state, 3 proposals
+# ARGV: 1 expected state version, 2 state blob, 3 round, 4 engine status, then proposal JSONs
+# Compare-and-swap: replaces the state and the proposal queue only when the stored version is
+# still the one the refit started from, so a stale refit never overwrites a newer state.
+# Returns 1 swapped, 0 version moved on, -1 no calibration.
+_SWAP = """
+local meta = KEYS[1]
+if redis.call('EXISTS', meta) == 0 then return -1 end
+if redis.call('HGET', meta, 'state_version') ~= ARGV[1] then return 0 end
+redis.call('SET', KEYS[2], ARGV[2])
+redis.call('DEL', KEYS[3])
+for i = 5, #ARGV do redis.call('RPUSH', KEYS[3], ARGV[i]) end
+redis.call('HINCRBY', meta, 'state_version', 1)
+redis.call('HSET', meta, 'round', ARGV[3], 'engine_status', ARGV[4])
+return 1
+"""
+
+# KEYS: every fixed key of the calibration (CalibrationKeys.fixed(), runs list at 6)
+# ARGV: 1 run key prefix
+# Deletes each run hash listed in the runs list, then the fixed keys. Returns 1 if it existed.
+_DELETE = """
+local existed = redis.call('EXISTS', KEYS[1])
+for _, rid in ipairs(redis.call('LRANGE', KEYS[6], 0, -1)) do
+  redis.call('DEL', ARGV[1] .. rid)
+end
+for i = 1, #KEYS do redis.call('DEL', KEYS[i]) end
+return existed
+"""
+
+# KEYS: 1 meta
+# ARGV: 1 error text, 2 failures allowed
+# Counts a failed refit; at the limit marks the calibration failed. Returns 1 failed now,
+# 0 keep retrying, -1 no calibration (nothing is created).
+_REFIT_FAILURE = """
+if redis.call('EXISTS', KEYS[1]) == 0 then return -1 end
+local n = redis.call('HINCRBY', KEYS[1], 'refit_failures', 1)
+if n >= tonumber(ARGV[2]) then
+  redis.call('HSET', KEYS[1], 'failed_error', ARGV[1])
+  return 1
+end
+return 0
+"""
+
+# KEYS: 1 meta
+# Resets the refit failure count after a good refit, without re-creating a deleted calibration.
+_REFIT_OK = """
+if redis.call('EXISTS', KEYS[1]) == 1 then redis.call('HSET', KEYS[1], 'refit_failures', 0) end
+return 1
+"""
+
+# KEYS: 1 refit lock;  ARGV: 1 owner token, 2 ttl in ms
+# Extends the lock only while the caller still owns it. Returns 1 renewed, 0 lost.
+_RENEW = """
+if redis.call('GET', KEYS[1]) == ARGV[1] then
+  return redis.call('PEXPIRE', KEYS[1], ARGV[2])
+end
+return 0
+"""
+
+# KEYS: 1 refit lock;  ARGV: 1 owner token
+# Deletes the lock only if the caller owns it (an expired lock may belong to someone else).
+_RELEASE = """
+if redis.call('GET', KEYS[1]) == ARGV[1] then return redis.call('DEL', KEYS[1]) end
+return 0
+"""
+
+
+def _s(value: bytes | str | None) -> str | None:
+    if value is None or isinstance(value, str):
+        return value
+    return value.decode()
+
+
+def _time(value: float) -> str:
+    return repr(float(value))
+
+
+class RedisStore:
+    """`Store` on a Redis server (or a cluster, thanks to per-calibration hash tags)."""
+
+    kind = "redis"
+
+    def __init__(self, url: str) -> None:
+        self._url = url
+        self._r = redis.Redis.from_url(
+            url, socket_timeout=5.0, socket_connect_timeout=2.0, decode_responses=False
+        )
+        self._expire = self._r.register_script(_EXPIRE)
+        self._lease = self._r.register_script(_LEASE)
+        self._finish = self._r.register_script(_FINISH)
+        self._import = self._r.register_script(_IMPORT)
+        self._swap = self._r.register_script(_SWAP)
+        self._delete = self._r.register_script(_DELETE)
+        self._refit_failure = self._r.register_script(_REFIT_FAILURE)
+        self._refit_ok = self._r.register_script(_REFIT_OK)
+        self._renew = self._r.register_script(_RENEW)
+        self._release = self._r.register_script(_RELEASE)
+        self._wait_aof: bool | None = None
+
+    @contextmanager
+    def _guard(self) -> Iterator[None]:
+        try:
+            yield
+        except (redis.ConnectionError, redis.TimeoutError, redis.BusyLoadingError) as exc:
+            raise StoreUnavailable(f"redis unavailable: {exc}") from exc
+
+    def ping(self) -> None:
+        with self._guard():
+            self._r.ping()
+
+    def close(self) -> None:
+        self._r.close()
+
+    def startup_warnings(self) -> list[str]:
+        """Check AOF, fsync and eviction settings; also decide whether WAITAOF is usable."""
+        warnings: list[str] = []
+        with self._guard():
+            try:
+                config = {
+                    _s(k): _s(v)
+                    for k, v in self._r.config_get("appendonly").items()
+                    | self._r.config_get("appendfsync").items()
+                    | self._r.config_get("maxmemory-policy").items()
+                }
+            except redis.ResponseError:
+                self._wait_aof = False
+                return ["CONFIG GET is not allowed: cannot check that Redis keeps results on disk"]
+            version = str(_s(self._r.info("server").get("redis_version", "0")))
+        parts = tuple(int(p) for p in version.split(".")[:2] if p.isdigit())
+        aof = config.get("appendonly") == "yes"
+        self._wait_aof = aof and parts >= (7, 2)
+        if not aof:
+            warnings.append(
+                "Redis appendonly is off: acknowledged results are lost if Redis restarts; "
+                "set 'appendonly yes'"
+            )
+        elif not self._wait_aof and config.get("appendfsync") != "always":
+            warnings.append(
+                f"Redis {version} lacks WAITAOF and appendfsync is "
+                f"{config.get('appendfsync')!r}: set 'appendfsync always' so a result is on "
+                "disk before it is acknowledged"
+            )
+        if config.get("maxmemory-policy") != "noeviction":
+            warnings.append(
+                f"Redis maxmemory-policy is {config.get('maxmemory-policy')!r}: set "
+                "'noeviction' so calibration data is never evicted"
+            )
+        return warnings
+
+    def _durable(self) -> None:
+        # With AOF on Redis >= 7.2, wait until this connection's writes are fsynced locally.
+        if self._wait_aof:
+            self._r.execute_command("WAITAOF", 1, 0, 0)
+
+    # calibrations
+
+    def create(self, calibration: NewCalibration) -> None:
+        k = CalibrationKeys(calibration.id)
+        with self._guard():
+            pipe = self._r.pipeline(transaction=True)
+            pipe.hset(
+                k.meta,
+                mapping={
+                    "token_hash": calibration.token_hash,
+                    "spec": calibration.spec_json,
+                    "created_at": _time(calibration.created_at),
+                    "state_version": 1,
+                    "round": calibration.round,
+                    "engine_status": calibration.engine_status,
+                    "seq": 0,
+                    "done": 0,
+                    "failed": 0,
+                    "leased": 0,
+                    "refit_failures": 0,
+                },
+            )
+            pipe.set(k.state, calibration.state_blob)
+            for i in range(0, len(calibration.proposals), _CHUNK):
+                pipe.rpush(k.proposals, *calibration.proposals[i : i + _CHUNK])
+            pipe.execute()
+            self._durable()
+
+    def get_meta(self, calibration_id: str) -> CalibrationMeta | None:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            pipe = self._r.pipeline(transaction=True)
+            pipe.hgetall(k.meta)
+            pipe.llen(k.proposals)
+            pipe.llen(k.requeue)
+            raw, n_proposals, n_requeue = pipe.execute()
+        if not raw:
+            return None
+        m = {_s(a): _s(b) for a, b in raw.items()}
+        return CalibrationMeta(
+            id=calibration_id,
+            token_hash=str(m["token_hash"]),
+            spec_json=str(m["spec"]),
+            created_at=float(str(m["created_at"])),
+            state_version=int(str(m["state_version"])),
+            round=int(str(m["round"])),
+            engine_status=str(m["engine_status"]),
+            done=int(str(m["done"])),
+            failed=int(str(m["failed"])),
+            leased=int(str(m["leased"])),
+            queued=int(n_proposals) + int(n_requeue),
+            failed_error=m.get("failed_error"),
+            refit_failures=int(str(m.get("refit_failures") or 0)),
+        )
+
+    def delete(self, calibration_id: str) -> bool:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            existed = self._delete(keys=k.fixed(), args=[k.run_prefix])
+            self._r.zrem(REFIT_DUE, calibration_id)
+        return bool(existed)
+
+    def load_state(self, calibration_id: str) -> tuple[int, bytes] | None:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            pipe = self._r.pipeline(transaction=True)
+            pipe.hget(k.meta, "state_version")
+            pipe.get(k.state)
+            version, blob = pipe.execute()
+        if version is None or blob is None:
+            return None
+        return int(version), bytes(blob)
+
+    def swap_state(
+        self,
+        calibration_id: str,
+        expected_version: int,
+        blob: bytes,
+        round_: int,
+        engine_status: str,
+        proposals: list[str],
+    ) -> bool:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            done = self._swap(
+                keys=[k.meta, k.state, k.proposals],
+                args=[str(expected_version), blob, str(round_), engine_status, *proposals],
+            )
+            self._durable()
+        return int(done) == 1
+
+    # runs
+
+    def lease(
+        self,
+        calibration_id: str,
+        count: int,
+        worker: str,
+        now: float,
+        lease_seconds: float,
+        max_runs: int,
+    ) -> LeaseResult:
+        k = CalibrationKeys(calibration_id)
+        expires = now + lease_seconds
+        with self._guard():
+            out = self._lease(
+                keys=[k.meta, k.proposals, k.requeue, k.leases, k.runs],
+                args=[k.run_prefix, _time(now), count, worker, _time(expires), max_runs],
+            )
+        if int(out[0]) < 0:
+            return LeaseResult([], 0)
+        runs = []
+        for i in range(1, len(out), 3):
+            fields = {
+                "run_id": str(_s(out[i])),
+                "seq": str(out[i + 1]),
+                "state": "leased",
+                "epoch": "1",
+                "worker": worker,
+                "leased_at": _time(now),
+                "lease_expires_at": _time(expires),
+                "point": str(_s(out[i + 2])),
+            }
+            runs.append(RunRecord.from_fields(fields))
+        return LeaseResult(runs, int(out[0]))
+
+    def expire(self, calibration_id: str, now: float) -> int:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            n = self._expire(keys=[k.meta, k.requeue, k.leases], args=[k.run_prefix, _time(now)])
+        return max(int(n), 0)
+
+    def get_run(self, calibration_id: str, run_id: str) -> RunRecord | None:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            raw = self._r.hgetall(k.run(run_id))
+        return self._record(raw)
+
+    @staticmethod
+    def _record(raw: dict[Any, Any]) -> RunRecord | None:
+        if not raw:
+            return None
+        return RunRecord.from_fields({str(_s(a)): str(_s(b)) for a, b in raw.items()})
+
+    def finish_run(
+        self,
+        calibration_id: str,
+        run_id: str,
+        epoch: int,
+        state: str,
+        result_json: str,
+        now: float,
+    ) -> bool:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            out = self._finish(
+                keys=[k.meta, k.requeue, k.leases, k.finished, k.run(run_id)],
+                args=[
+                    k.run_prefix,
+                    _time(now),
+                    run_id,
+                    str(epoch),
+                    state,
+                    result_json,
+                    _time(now),
+                ],
+            )
+            if int(out) == 1:
+                self._durable()
+        return int(out) == 1
+
+    def import_runs(
+        self, calibration_id: str, items: list[tuple[str, str]], now: float
+    ) -> list[str]:
+        k = CalibrationKeys(calibration_id)
+        flat = [part for item in items for part in item]
+        with self._guard():
+            out = self._import(
+                keys=[k.meta, k.runs, k.finished], args=[k.run_prefix, _time(now), *flat]
+            )
+            self._durable()
+        if out and out[0] == -1:
+            return []
+        return [str(_s(rid)) for rid in out]
+
+    def list_runs(self, calibration_id: str, state: str | None = None) -> list[RunRecord]:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            ids = self._r.lrange(k.runs, 0, -1)
+            records = self._fetch(k, ids)
+        return [r for r in records if state is None or r.state == state]
+
+    def finished_runs(self, calibration_id: str) -> list[RunRecord]:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            ids = self._r.lrange(k.finished, 0, -1)
+            return self._fetch(k, ids)
+
+    def _fetch(self, k: CalibrationKeys, ids: list[Any]) -> list[RunRecord]:
+        records: list[RunRecord] = []
+        for i in range(0, len(ids), _CHUNK):
+            pipe = self._r.pipeline(transaction=False)
+            for rid in ids[i : i + _CHUNK]:
+                pipe.hgetall(k.run(str(_s(rid))))
+            for raw in pipe.execute():
+                record = self._record(raw)
+                if record is not None:
+                    records.append(record)
+        return records
+
+    # refit jobs
+
+    def enqueue_refit(self, calibration_id: str, now: float) -> None:
+        with self._guard():
+            self._r.zadd(REFIT_DUE, {calibration_id: now}, nx=True)
+
+    def refit_pending(self, calibration_id: str) -> bool:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            pipe = self._r.pipeline(transaction=False)
+            pipe.zscore(REFIT_DUE, calibration_id)
+            pipe.exists(k.refit_lock)
+            score, locked = pipe.execute()
+        return score is not None or bool(locked)
+
+    def due_refits(self, now: float, limit: int) -> list[str]:
+        with self._guard():
+            ids = self._r.zrangebyscore(REFIT_DUE, "-inf", now, start=0, num=limit)
+        return [str(_s(i)) for i in ids]
+
+    def acquire_refit_lock(self, calibration_id: str, owner: str, ttl: float) -> bool:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            return bool(self._r.set(k.refit_lock, owner, nx=True, px=int(ttl * 1000)))
+
+    def renew_refit_lock(self, calibration_id: str, owner: str, ttl: float) -> bool:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            return int(self._renew(keys=[k.refit_lock], args=[owner, int(ttl * 1000)])) == 1
+
+    def release_refit_lock(self, calibration_id: str, owner: str) -> None:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            self._release(keys=[k.refit_lock], args=[owner])
+
+    def finish_refit(self, calibration_id: str) -> None:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            self._r.zrem(REFIT_DUE, calibration_id)
+            self._refit_ok(keys=[k.meta])
+
+    def record_refit_failure(
+        self, calibration_id: str, error: str, max_failures: int, retry_at: float
+    ) -> bool:
+        k = CalibrationKeys(calibration_id)
+        with self._guard():
+            out = int(self._refit_failure(keys=[k.meta], args=[error, max_failures]))
+            if out == 0:
+                self._r.zadd(REFIT_DUE, {calibration_id: retry_at}, xx=True)
+            else:
+                self._r.zrem(REFIT_DUE, calibration_id)
+        return out == 1
+
+    def refit_queue_depth(self) -> int:
+        with self._guard():
+            return int(self._r.zcard(REFIT_DUE))

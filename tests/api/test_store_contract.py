@@ -1,0 +1,195 @@
+import json
+
+import pytest
+from honing.api.store import NewCalibration, Store
+
+
+def point(i: int) -> str:
+    return json.dumps({"parameters": {"a": float(i)}, "prediction": None, "round": 0})
+
+
+def make(store: Store, cid: str = "c1", proposals: int = 5) -> None:
+    store.create(
+        NewCalibration(
+            id=cid,
+            token_hash="h",
+            spec_json="{}",
+            created_at=1000.0,
+            state_blob=b"\x00state\xff",
+            round=0,
+            engine_status="collecting",
+            proposals=[point(i) for i in range(proposals)],
+        )
+    )
+
+
+def done(value: float) -> str:
+    return json.dumps({"outputs": {"y": [value]}, "error": None, "trust": 1.0})
+
+
+def test_create_and_read_back(store: Store) -> None:
+    make(store)
+    meta = store.get_meta("c1")
+    assert meta is not None
+    assert (meta.done, meta.failed, meta.leased, meta.queued) == (0, 0, 0, 5)
+    assert meta.state_version == 1 and meta.engine_status == "collecting"
+    assert store.load_state("c1") == (1, b"\x00state\xff")
+    assert store.get_meta("nope") is None
+    assert store.load_state("nope") is None
+
+
+def test_lease_hands_out_in_order_with_fresh_ids(store: Store) -> None:
+    make(store)
+    first = store.lease("c1", 2, "w", 10.0, 60.0, 100).runs
+    second = store.lease("c1", 10, "w", 10.0, 60.0, 100).runs
+    values = [r.point["parameters"]["a"] for r in first + second]
+    assert values == [0.0, 1.0, 2.0, 3.0, 4.0]
+    assert len({r.run_id for r in first + second}) == 5
+    assert first[0].state == "leased" and first[0].lease_expires_at == 70.0
+    assert store.get_meta("c1").leased == 5  # type: ignore[union-attr]
+    assert store.lease("c1", 3, "w", 10.0, 60.0, 100).runs == []
+
+
+def test_lease_respects_the_budget(store: Store) -> None:
+    make(store, proposals=10)
+    runs = store.lease("c1", 3, "w", 0.0, 60.0, 4).runs
+    assert store.finish_run("c1", runs[0].run_id, runs[0].epoch, "done", done(1.0), 1.0)
+    # done 1 + leased 2 leaves room for one more under max_runs 4.
+    assert len(store.lease("c1", 5, "w", 1.0, 60.0, 4).runs) == 1
+    assert store.lease("c1", 5, "w", 1.0, 60.0, 4).runs == []
+
+
+def test_finish_run_is_fenced_by_epoch(store: Store) -> None:
+    make(store)
+    (run,) = store.lease("c1", 1, "w", 0.0, 60.0, 100).runs
+    assert not store.finish_run("c1", run.run_id, run.epoch + 1, "done", done(1.0), 1.0)
+    assert store.finish_run("c1", run.run_id, run.epoch, "done", done(1.0), 1.0)
+    # Finished: the old epoch no longer matches, so a second write is refused.
+    assert not store.finish_run("c1", run.run_id, run.epoch, "done", done(2.0), 1.0)
+    stored = store.get_run("c1", run.run_id)
+    assert stored is not None and stored.state == "done"
+    assert stored.result == {"outputs": {"y": [1.0]}, "error": None, "trust": 1.0}
+    meta = store.get_meta("c1")
+    assert meta is not None and (meta.done, meta.leased) == (1, 0)
+    assert not store.finish_run("c1", "r999", 1, "done", done(1.0), 1.0)
+
+
+def test_expired_lease_is_requeued_first_and_late_result_kept(store: Store) -> None:
+    make(store, proposals=3)
+    (old,) = store.lease("c1", 1, "w", 0.0, 10.0, 100).runs
+    lease = store.lease("c1", 1, "w", 10.0, 10.0, 100)
+    assert lease.expired == 1
+    (again,) = lease.runs
+    assert again.run_id != old.run_id
+    assert again.point == old.point
+    expired = store.get_run("c1", old.run_id)
+    assert expired is not None and expired.state == "expired" and expired.epoch == old.epoch + 1
+    assert not store.finish_run("c1", old.run_id, old.epoch, "done", done(1.0), 11.0)
+    assert store.finish_run("c1", old.run_id, expired.epoch, "done", done(1.0), 11.0)
+    assert store.finish_run("c1", again.run_id, again.epoch, "failed", done(1.0), 12.0)
+    meta = store.get_meta("c1")
+    assert meta is not None and (meta.done, meta.failed, meta.leased) == (1, 1, 0)
+    assert [r.run_id for r in store.finished_runs("c1")] == [old.run_id, again.run_id]
+    assert [r.state for r in store.list_runs("c1")] == ["done", "failed"]
+    assert [r.run_id for r in store.list_runs("c1", "failed")] == [again.run_id]
+
+
+def test_expire_runs_lazily_on_report(store: Store) -> None:
+    make(store, proposals=3)
+    a, b = store.lease("c1", 2, "w", 0.0, 10.0, 100).runs
+    # The report step itself expires both overdue leases, so the epoch it was given is stale.
+    assert not store.finish_run("c1", a.run_id, a.epoch, "done", done(1.0), 20.0)
+    assert [store.get_run("c1", r.run_id).state for r in (a, b)] == ["expired", "expired"]  # type: ignore[union-attr]
+    meta = store.get_meta("c1")
+    assert meta is not None and (meta.queued, meta.leased) == (3, 0)
+    assert store.expire("c1", 30.0) == 0
+
+
+def test_import_adds_done_runs_in_one_step(store: Store) -> None:
+    make(store)
+    ids = store.import_runs("c1", [(point(7), done(1.0)), (point(8), done(2.0))], 5.0)
+    assert len(ids) == 2
+    runs = store.list_runs("c1")
+    assert [r.state for r in runs] == ["done", "done"] and all(r.imported for r in runs)
+    assert store.get_meta("c1").done == 2  # type: ignore[union-attr]
+    assert [r.run_id for r in store.finished_runs("c1")] == ids
+    assert store.import_runs("missing", [(point(1), done(1.0))], 5.0) == []
+
+
+def test_swap_state_is_compare_and_swap(store: Store) -> None:
+    make(store)
+    store.lease("c1", 1, "w", 0.0, 60.0, 100)
+    assert store.swap_state("c1", 1, b"new", 1, "collecting", [point(50), point(51)])
+    assert not store.swap_state("c1", 1, b"stale", 1, "collecting", [point(60)])
+    assert store.load_state("c1") == (2, b"new")
+    meta = store.get_meta("c1")
+    assert meta is not None and (meta.round, meta.queued, meta.state_version) == (1, 2, 2)
+    runs = store.lease("c1", 5, "w", 1.0, 60.0, 100).runs
+    assert [r.point["parameters"]["a"] for r in runs] == [50.0, 51.0]
+    assert not store.swap_state("missing", 1, b"x", 1, "collecting", [])
+
+
+def test_delete_removes_everything(store: Store) -> None:
+    make(store)
+    make(store, "c2")
+    run = store.lease("c1", 1, "w", 0.0, 60.0, 100).runs[0]
+    store.finish_run("c1", run.run_id, run.epoch, "done", done(1.0), 1.0)
+    store.enqueue_refit("c1", 1.0)
+    assert store.delete("c1")
+    assert not store.delete("c1")
+    assert store.get_meta("c1") is None and store.list_runs("c1") == []
+    assert store.due_refits(10.0, 10) == []
+    assert store.get_meta("c2") is not None
+
+
+def test_refit_queue_and_lock(store: Store) -> None:
+    make(store)
+    make(store, "c2")
+    store.enqueue_refit("c2", 5.0)
+    store.enqueue_refit("c1", 6.0)
+    store.enqueue_refit("c2", 7.0)
+    assert store.due_refits(10.0, 10) == ["c2", "c1"]
+    assert store.due_refits(5.5, 10) == ["c2"]
+    assert store.refit_queue_depth() == 2
+    assert store.refit_pending("c1")
+    assert store.acquire_refit_lock("c1", "me", 30.0)
+    assert not store.acquire_refit_lock("c1", "other", 30.0)
+    assert store.renew_refit_lock("c1", "me", 30.0)
+    assert not store.renew_refit_lock("c1", "other", 30.0)
+    store.release_refit_lock("c1", "other")
+    assert not store.acquire_refit_lock("c1", "other", 30.0)
+    store.release_refit_lock("c1", "me")
+    assert store.acquire_refit_lock("c1", "other", 30.0)
+    store.finish_refit("c2")
+    assert store.due_refits(10.0, 10) == ["c1"]
+    assert not store.refit_pending("c2")
+
+
+def test_refit_lock_expires(store: Store) -> None:
+    make(store)
+    assert store.acquire_refit_lock("c1", "dead", 0.05)
+    import time
+
+    time.sleep(0.2)
+    assert store.acquire_refit_lock("c1", "alive", 30.0)
+    assert not store.renew_refit_lock("c1", "dead", 30.0)
+
+
+def test_refit_failures_retry_then_fail(store: Store) -> None:
+    make(store)
+    store.enqueue_refit("c1", 1.0)
+    assert not store.record_refit_failure("c1", "boom", 2, 50.0)
+    assert store.due_refits(10.0, 10) == []
+    assert store.due_refits(50.0, 10) == ["c1"]
+    assert store.record_refit_failure("c1", "boom", 2, 60.0)
+    meta = store.get_meta("c1")
+    assert meta is not None and meta.failed_error == "boom"
+    assert store.due_refits(100.0, 10) == []
+    assert not store.record_refit_failure("missing", "boom", 2, 1.0)
+    assert store.get_meta("missing") is None
+
+
+@pytest.mark.parametrize("count", [0, 1])
+def test_lease_unknown_calibration_is_empty(store: Store, count: int) -> None:
+    assert store.lease("missing", count, "w", 0.0, 60.0, 100).runs == []
+    assert store.get_meta("missing") is None

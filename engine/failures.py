@@ -1,0 +1,64 @@
+"""Where the simulator fails: a probabilistic classifier over reference coordinates.
+
+Runs reported as failed never enter the regression; instead a logistic regression on
+quadratic features learns the probability that a run at a point succeeds, refitted every
+round, and the posterior the sampler sees is multiplied by it. The defensive share of each
+batch (see `honing.engine.design`) ignores this model, so the boundary keeps being probed.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from sklearn.linear_model import LogisticRegression
+
+__all__ = ["FailureModel"]
+
+#: Inverse regularisation strength of the logistic fit (scikit-learn's default).
+REGULARISATION_C = 1.0
+#: Smallest success probability used in the log, so a point is never ruled out entirely.
+MIN_SUCCESS = 1e-6
+
+
+@dataclass
+class FailureModel:
+    """Logistic model of ``P(success | xi)`` on standardised linear and quadratic features."""
+
+    center: np.ndarray
+    scale: np.ndarray
+    coef: np.ndarray
+    intercept: float
+
+    @classmethod
+    def fit(cls, xi: np.ndarray, failed: np.ndarray) -> FailureModel | None:
+        """Fit on every run; None when no run failed (or none succeeded)."""
+        if not failed.any() or failed.all():
+            return None
+        center = xi.mean(axis=0)
+        scale = np.maximum(xi.std(axis=0), 1e-9)
+        features = _features((xi - center) / scale)
+        model = LogisticRegression(C=REGULARISATION_C, max_iter=2000)
+        model.fit(features, (~failed).astype(int))
+        return cls(center, scale, model.coef_[0].copy(), float(model.intercept_[0]))
+
+    def log_success(self, xi: np.ndarray) -> np.ndarray:
+        """``log P(success)`` at points, shape ``(n_points,)``."""
+        eta = _features((xi - self.center) / self.scale) @ self.coef + self.intercept
+        # log(sigmoid(eta)) = -log(1 + exp(-eta)), computed stably.
+        return np.maximum(-np.logaddexp(0.0, -eta), np.log(MIN_SUCCESS))
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "center": self.center.tolist(),
+            "scale": self.scale.tolist(),
+            "coef": self.coef.tolist(),
+            "intercept": self.intercept,
+        }
+
+
+def _features(z: np.ndarray) -> np.ndarray:
+    """Linear and quadratic terms ``[z_i, z_i z_j for i <= j]``, shape ``(n, d + d(d+1)/2)``."""
+    i, j = np.triu_indices(z.shape[1])
+    return np.hstack([z, z[:, i] * z[:, j]])

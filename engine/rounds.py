@@ -1,0 +1,546 @@
+"""One calibration round: from every finished run to a new surrogate, posterior and batch.
+
+`start` opens a calibration (prior summary and the space-filling initial design); `refit`
+turns the finished runs into the next state. Both are pure functions of the spec, the previous
+state and the runs: the service stores what they return, and the same inputs give the same
+state bit for bit.
+
+The round, in order:
+
+1. keep the newest `retain_fraction` of successful runs (at least `retained_floor`), each
+   weighted by its trust index;
+2. score the previous surrogate on the runs finished since it was fitted (validation error);
+3. fit the output reduction and a sparse expansion per component in a frame local to the
+   retained runs;
+4. sample the surrogate posterior with emcee, the likelihood's variance widened by the
+   surrogate's honest error, and multiplied by the learned probability that the simulator
+   succeeds;
+5. summarise, compare with the previous posterior, and draw the next batch from the pool.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from honing.engine.design import initial_design, select_batch
+from honing.engine.diagnostics import (
+    converged,
+    gaussian_kl,
+    kl_tolerance,
+    marginal_kl,
+    parameter_summary,
+    trust_from_error,
+)
+from honing.engine.failures import FailureModel
+from honing.engine.likelihood import log_likelihood, noise_scale_draws, whiten
+from honing.engine.priors import reference_logpdf
+from honing.engine.sampling import n_walkers, sample_posterior
+from honing.engine.spec import CalibrationSpec
+from honing.engine.state import EngineState, RunTable
+from honing.engine.surrogate import Frame, Surrogate, fit_surrogate
+
+__all__ = [
+    "posterior_samples",
+    "prediction_error",
+    "refit",
+    "refit_due",
+    "retained_floor",
+    "start",
+    "trust_index",
+]
+
+#: Prior draws behind the round-0 summary.
+PRIOR_DRAWS = 4000
+#: Posterior draws pushed through the surrogate for the predictive bands.
+PREDICTIVE_DRAWS = 400
+#: Share of a channel's data points outside the prior-predictive 95% band above which the
+#: prior is reported as unable to explain the data (5% are expected outside by chance).
+PRIOR_MISS_SHARE = 0.1
+#: Histogram bins for the prior-to-posterior divergence of each marginal.
+KL_BINS = 40
+
+
+def retained_floor(spec: CalibrationSpec) -> int:
+    """Fewest successful runs a fit keeps: the initial design size, and two per parameter."""
+    return max(spec.initial_runs, 2 * (spec.dim + 1))
+
+
+def start(spec: CalibrationSpec) -> EngineState:
+    """Round 0: the prior's summary and the initial design, with one batch of spares.
+
+    Parameters
+    ----------
+    spec : CalibrationSpec
+
+    Returns
+    -------
+    EngineState
+    """
+    rng = np.random.Generator(np.random.PCG64(spec.seed))
+    families = [p.prior.family for p in spec.parameters]
+    xi = initial_design(families, spec.initial_runs + spec.batch_size, rng)
+    proposals = _to_physical(spec, xi)
+    prior = np.column_stack([p.prior.sample(rng, PRIOR_DRAWS) for p in spec.parameters])
+    summary = {
+        "round": 0,
+        "runs_completed": 0,
+        "status": "collecting",
+        "parameters": {
+            p.name: parameter_summary(prior[:, i], float(p.prior.ppf(np.array([0.5]))[0]),
+                                      p.prior.sd)
+            for i, p in enumerate(spec.parameters)
+        },
+        "correlation": np.corrcoef(prior, rowvar=False).reshape(spec.dim, spec.dim).tolist(),
+        "diagnostics": _empty_diagnostics(),
+        "predictive": {},
+    }
+    if spec.noise_scale == "estimate":
+        summary["parameters"]["noise_scale"] = None
+    return EngineState(
+        round=0,
+        status="collecting",
+        runs_at_fit=0,
+        proposals=proposals,
+        predictions=np.zeros((0, spec.output_size), dtype=np.float32),
+        pool=prior,
+        summary=summary,
+        history=[],
+        rng=rng.bit_generator.state,
+    )
+
+
+def refit_due(
+    spec: CalibrationSpec, state: EngineState, finished: int, outstanding: int, queued: int
+) -> bool:
+    """Whether enough has finished since the last fit to fit again.
+
+    A round waits for a batch's worth of new results (the whole initial design before the
+    first fit), or for every outstanding run once nothing is left to hand out.
+    """
+    if state.status not in ("collecting",):
+        return False
+    new = finished - state.runs_at_fit
+    target = spec.initial_runs if state.round == 0 else spec.batch_size
+    if new <= 0:
+        return False
+    return new >= target or (outstanding == 0 and queued == 0) or finished >= spec.max_runs
+
+
+def prediction_error(
+    spec: CalibrationSpec, predicted: np.ndarray | None, outputs: np.ndarray
+) -> float:
+    """Rms of (true - predicted) whitened residuals of one run; NaN with no prediction."""
+    if predicted is None or np.size(predicted) == 0:
+        return float("nan")
+    diff = whiten(spec, outputs) - np.asarray(predicted, dtype=float)
+    return float(np.sqrt(np.mean(diff**2)))
+
+
+def trust_index(
+    spec: CalibrationSpec, predicted: np.ndarray | None, outputs: np.ndarray
+) -> float:
+    """Trust of one run (see `honing.engine.diagnostics.trust_from_error`); 1 with no
+    prediction, as for the initial design and imported runs."""
+    err = prediction_error(spec, predicted, outputs)
+    return 1.0 if np.isnan(err) else trust_from_error(err)
+
+
+def posterior_samples(
+    spec: CalibrationSpec, state: EngineState, count: int
+) -> tuple[list[str], np.ndarray]:
+    """Up to ``count`` posterior draws (the prior's before the first fit), columns named."""
+    names = list(spec.names)
+    if spec.noise_scale == "estimate" and state.pool.shape[1] > spec.dim:
+        names.append("noise_scale")
+    return names, state.pool[: max(0, count)]
+
+
+def refit(spec: CalibrationSpec, state: EngineState, runs: RunTable) -> EngineState:
+    """The next round from every finished run, in completion order.
+
+    Parameters
+    ----------
+    spec : CalibrationSpec
+    state : EngineState
+        The latest state; its proposals carry the predictions used for validation.
+    runs : RunTable
+        Every finished run so far, failed ones included.
+
+    Returns
+    -------
+    EngineState
+    """
+    rng = state.generator()
+    families = [p.prior.family for p in spec.parameters]
+    ok = ~runs.failed
+    xi_all = _to_reference(spec, runs.theta)
+    if ok.sum() < 2:
+        return _without_fit(spec, state, runs, xi_all, rng, families)
+
+    order = np.flatnonzero(ok)
+    keep = max(retained_floor(spec), int(np.ceil(spec.retain_fraction * order.size)))
+    kept = order[-keep:]
+    residuals = whiten(spec, runs.outputs[kept])
+    weights = np.clip(runs.trust[kept], 1e-12, 1.0)
+    validation = _validation_error(spec, state, runs)
+
+    surrogate = fit_surrogate(
+        xi_all[kept], residuals, weights, Frame.local(xi_all[kept], weights), spec.max_degree
+    )
+    model_error = validation if validation is not None else _loo_error(surrogate, residuals)
+    failures = FailureModel.fit(xi_all, runs.failed)
+    log_post = _log_posterior(spec, surrogate, families, model_error, failures)
+
+    initial = _initial_walkers(spec, state, xi_all[kept], log_post, rng)
+    chain = sample_posterior(log_post, initial, rng)
+    pool_xi = chain.draws
+    theta = _to_physical(spec, pool_xi)
+    misfit = surrogate.misfit(pool_xi)
+    columns = [theta]
+    if spec.noise_scale == "estimate":
+        columns.append(noise_scale_draws(misfit, spec.output_size, rng)[:, None])
+    pool = np.hstack(columns)
+
+    mean, cov = pool_xi.mean(axis=0), _cov(pool_xi)
+    change = None
+    if "post_mean" in state.arrays:
+        change = gaussian_kl(mean, cov, state.arrays["post_mean"], state.arrays["post_cov"])
+    ess_min = float(chain.ess.min())
+    finished = runs.n_runs
+    diagnostics = {
+        "trust_mean": float(np.mean(runs.trust[kept])),
+        "validation_error": validation,
+        "posterior_change": change,
+        "surrogate_terms": surrogate.n_terms,
+        "surrogate_degree": surrogate.degree,
+        "surrogate_components": surrogate.reduction.n_components,
+        "model_error": model_error,
+        "ess_min": ess_min,
+        "tau_max": float(chain.tau.max()),
+        "chain_steps": chain.n_steps,
+        "acceptance": chain.acceptance,
+        "failed_fraction": float(runs.failed.mean()),
+        "runs_retained": int(kept.size),
+        "converged": False,
+        "warnings": list(chain.warnings),
+    }
+    entry = {
+        "round": state.round + 1,
+        "runs_completed": int(ok.sum()),
+        "runs_failed": int(runs.failed.sum()),
+        **{k: diagnostics[k] for k in ("validation_error", "posterior_change", "trust_mean")},
+        "surrogate_terms": surrogate.n_terms,
+        "kl_tolerance": kl_tolerance(spec.dim, ess_min),
+    }
+    history = [*state.history, entry]
+    is_converged = converged(history)
+    diagnostics["converged"] = is_converged
+    status = "collecting"
+    if is_converged:
+        status = "converged"
+    elif finished >= spec.max_runs:
+        status = "budget_exhausted"
+
+    prior_predictive = state.summary.get("prior_predictive")
+    if prior_predictive is None:
+        prior_predictive = _prior_predictive(spec, runs, rng)
+    diagnostics["warnings"].extend(_prior_warnings(spec, prior_predictive))
+
+    summary = {
+        "round": state.round + 1,
+        "runs_completed": int(ok.sum()),
+        "status": status,
+        "parameters": _parameter_summaries(spec, pool, pool_xi, misfit, model_error, failures),
+        "correlation": np.corrcoef(pool, rowvar=False).reshape(pool.shape[1], -1).tolist(),
+        "diagnostics": diagnostics,
+        "predictive": _predictive(spec, surrogate, pool, pool_xi, rng),
+        "prior_predictive": prior_predictive,
+    }
+
+    batch_xi = select_batch(pool_xi, 2 * spec.batch_size, xi_all, families, rng)
+    meta, arrays = surrogate.to_payload()
+    return EngineState(
+        round=state.round + 1,
+        status=status,
+        runs_at_fit=finished,
+        proposals=_to_physical(spec, batch_xi),
+        predictions=surrogate.residuals(batch_xi).astype(np.float32),
+        pool=pool,
+        summary=_json_safe(summary),
+        history=_json_safe(history),
+        rng=rng.bit_generator.state,
+        surrogate={**meta, "failures": failures.to_dict() if failures else None},
+        arrays={**arrays, "post_mean": mean, "post_cov": cov},
+    )
+
+
+def _to_reference(spec: CalibrationSpec, theta: np.ndarray) -> np.ndarray:
+    theta = np.atleast_2d(theta)
+    return np.column_stack(
+        [p.prior.to_reference(theta[:, i]) for i, p in enumerate(spec.parameters)]
+    ).reshape(theta.shape[0], spec.dim)
+
+
+def _to_physical(spec: CalibrationSpec, xi: np.ndarray) -> np.ndarray:
+    return np.column_stack(
+        [p.prior.from_reference(xi[:, i]) for i, p in enumerate(spec.parameters)]
+    ).reshape(xi.shape[0], spec.dim)
+
+
+def _cov(x: np.ndarray) -> np.ndarray:
+    d = x.shape[1]
+    return np.cov(x, rowvar=False).reshape(d, d) + 1e-12 * np.eye(d)
+
+
+def _empty_diagnostics() -> dict[str, Any]:
+    return {
+        "trust_mean": None,
+        "validation_error": None,
+        "posterior_change": None,
+        "surrogate_terms": None,
+        "surrogate_degree": None,
+        "converged": False,
+        "warnings": [],
+    }
+
+
+def _validation_error(
+    spec: CalibrationSpec, state: EngineState, runs: RunTable
+) -> float | None:
+    """Rms prediction error in noise units over runs finished since the last fit.
+
+    Each run is matched to the proposal it came from by its exact parameter values, so only
+    predictions made before the run was evaluated count.
+    """
+    if state.predictions.shape[0] == 0:
+        return None
+    lookup = {row.tobytes(): i for i, row in enumerate(state.proposals)}
+    errors = []
+    for r in range(state.runs_at_fit, runs.n_runs):
+        i = lookup.get(runs.theta[r].tobytes())
+        if runs.failed[r] or i is None:
+            continue
+        errors.append(prediction_error(spec, state.predictions[i], runs.outputs[r]) ** 2)
+    return float(np.sqrt(np.mean(errors))) if errors else None
+
+
+def _loo_error(surrogate: Surrogate, residuals: np.ndarray) -> float:
+    """Rms surrogate error per value in noise units, from each component's leave-one-out error.
+
+    Used before any out-of-sample prediction exists (the first fit).
+    """
+    scores = surrogate.reduction.project(residuals)
+    mse = np.sum(surrogate.loo_error * scores.var(axis=0)) + surrogate.reduction.residual_energy
+    return float(np.sqrt(mse / residuals.shape[1]))
+
+
+def _log_posterior(
+    spec: CalibrationSpec,
+    surrogate: Surrogate,
+    families: list[Any],
+    model_error: float,
+    failures: FailureModel | None,
+) -> Any:
+    """Vectorised log posterior in reference coordinates.
+
+    With a fixed sd, the surrogate's error variance (``model_error^2`` per value, in noise
+    units) is added to the noise variance, so the misfit is divided by ``1 + model_error^2``:
+    an early, poor surrogate gives a wider posterior rather than a wrong one.
+    """
+    inflation = 1.0 + model_error**2
+    estimate = spec.noise_scale == "estimate"
+
+    def log_post(xi: np.ndarray) -> np.ndarray:
+        lp = np.zeros(xi.shape[0])
+        for j, family in enumerate(families):
+            lp += reference_logpdf(family, xi[:, j])
+        inside = np.isfinite(lp)
+        out = np.full(xi.shape[0], -np.inf)
+        if not inside.any():
+            return out
+        x = xi[inside]
+        misfit = surrogate.misfit(x)
+        ll = log_likelihood(misfit if estimate else misfit / inflation, spec.output_size, estimate)
+        if failures is not None:
+            ll = ll + failures.log_success(x)
+        out[inside] = lp[inside] + ll
+        return out
+
+    return log_post
+
+
+def _initial_walkers(
+    spec: CalibrationSpec,
+    state: EngineState,
+    kept_xi: np.ndarray,
+    log_post: Any,
+    rng: np.random.Generator,
+) -> np.ndarray:
+    """Walkers drawn from the previous pool and the retained runs, tempered toward the new
+    posterior: weights ``exp((lp - max) / T)`` with T raised until the weights' effective
+    size is at least three walkers' worth, which keeps the ensemble spread out."""
+    walkers = n_walkers(spec.dim)
+    previous = _to_reference(spec, state.pool[:, : spec.dim])
+    take = min(previous.shape[0], 4000)
+    candidates = np.vstack([previous[rng.choice(previous.shape[0], take, replace=False)], kept_xi])
+    lp = log_post(candidates)
+    finite = np.isfinite(lp)
+    candidates, lp = candidates[finite], lp[finite]
+    if candidates.shape[0] < walkers:
+        raise ValueError(
+            f"only {candidates.shape[0]} starting points have a finite posterior; "
+            f"{walkers} walkers are needed"
+        )
+    z = lp - lp.max()
+    temperature = 1.0
+    for _ in range(200):
+        p = np.exp(z / temperature)
+        p /= p.sum()
+        if 1.0 / np.sum(p**2) >= 3 * walkers:
+            break
+        temperature *= 1.5
+    p = np.maximum(p, 1e-300)
+    p /= p.sum()
+    idx = rng.choice(candidates.shape[0], walkers, replace=False, p=p)
+    return candidates[idx]
+
+
+def _parameter_summaries(
+    spec: CalibrationSpec,
+    pool: np.ndarray,
+    pool_xi: np.ndarray,
+    misfit: np.ndarray,
+    model_error: float,
+    failures: FailureModel | None,
+) -> dict[str, Any]:
+    """Per-parameter summaries; the MAP is the draw of highest physical posterior density."""
+    estimate = spec.noise_scale == "estimate"
+    inflation = 1.0 + model_error**2
+    log_density = log_likelihood(
+        misfit if estimate else misfit / inflation, spec.output_size, estimate
+    )
+    if failures is not None:
+        log_density = log_density + failures.log_success(pool_xi)
+    for i, p in enumerate(spec.parameters):
+        log_density = log_density + p.prior.logpdf(pool[:, i])
+    best = int(np.argmax(log_density))
+    out: dict[str, Any] = {}
+    for i, p in enumerate(spec.parameters):
+        entry = parameter_summary(pool[:, i], pool[best, i], p.prior.sd)
+        lo, hi = np.quantile(pool[:, i], [0.001, 0.999])
+        edges = np.linspace(lo, hi, KL_BINS + 1)
+        centres = 0.5 * (edges[1:] + edges[:-1])
+        entry["kl_prior"] = marginal_kl(pool[:, i], p.prior.logpdf(centres), edges)
+        out[p.name] = entry
+    if estimate:
+        s = pool[:, spec.dim]
+        out["noise_scale"] = parameter_summary(s, s[best], float("nan"))
+    return out
+
+
+def _predictive(
+    spec: CalibrationSpec,
+    surrogate: Surrogate,
+    pool: np.ndarray,
+    pool_xi: np.ndarray,
+    rng: np.random.Generator,
+) -> dict[str, Any]:
+    """Posterior-predictive mean and 95% band of a new measurement, per channel."""
+    n = min(PREDICTIVE_DRAWS, pool_xi.shape[0])
+    idx = rng.choice(pool_xi.shape[0], n, replace=False)
+    scale = pool[idx, spec.dim][:, None] if spec.noise_scale == "estimate" else 1.0
+    sim = spec.data + spec.sd * surrogate.residuals(pool_xi[idx])
+    measured = sim + scale * spec.sd * rng.standard_normal(sim.shape)
+    return _bands(spec, sim, measured)
+
+
+def _bands(spec: CalibrationSpec, sim: np.ndarray, measured: np.ndarray) -> dict[str, Any]:
+    out, start = {}, 0
+    for obs in spec.observations:
+        cols = slice(start, start + obs.size)
+        lo, hi = np.quantile(measured[:, cols], [0.025, 0.975], axis=0)
+        out[obs.name] = {"mean": sim[:, cols].mean(axis=0), "lo95": lo, "hi95": hi}
+        start += obs.size
+    return out
+
+
+def _prior_predictive(
+    spec: CalibrationSpec, runs: RunTable, rng: np.random.Generator
+) -> dict[str, Any]:
+    """95% band of a new measurement under the prior, from the initial design's runs, and the
+    count of data points outside it per channel."""
+    first = runs.outputs[: spec.initial_runs][~runs.failed[: spec.initial_runs]]
+    measured = first + spec.sd * rng.standard_normal(first.shape)
+    bands = _bands(spec, first, measured)
+    start = 0
+    for obs in spec.observations:
+        band = bands[obs.name]
+        outside = (obs.values < band["lo95"]) | (obs.values > band["hi95"])
+        band["uncovered"] = int(outside.sum())
+        del band["mean"]
+        start += obs.size
+    return bands
+
+
+def _prior_warnings(spec: CalibrationSpec, prior_predictive: dict[str, Any]) -> list[str]:
+    out = []
+    for obs in spec.observations:
+        band = prior_predictive.get(obs.name)
+        if band and band["uncovered"] > PRIOR_MISS_SHARE * obs.size:
+            out.append(
+                f"prior check: {band['uncovered']} of {obs.size} points of {obs.name!r} lie "
+                "outside the prior-predictive 95% band; the prior ranges may not be able to "
+                "explain the data, and the calibration answer would then be meaningless"
+            )
+    return out
+
+
+def _without_fit(
+    spec: CalibrationSpec,
+    state: EngineState,
+    runs: RunTable,
+    xi_all: np.ndarray,
+    rng: np.random.Generator,
+    families: list[Any],
+) -> EngineState:
+    """Fewer than two successful runs: keep the prior, hand out fresh space-filling points."""
+    fresh = initial_design(families, spec.initial_runs + runs.n_runs, rng)[runs.n_runs :]
+    status = "budget_exhausted" if runs.n_runs >= spec.max_runs else state.status
+    summary = dict(state.summary)
+    summary["diagnostics"] = {
+        **_empty_diagnostics(),
+        "failed_fraction": float(runs.failed.mean()) if runs.n_runs else 0.0,
+        "warnings": ["fewer than two successful runs: the surrogate cannot be fitted yet"],
+    }
+    summary["status"] = status
+    return EngineState(
+        round=state.round,
+        status=status,
+        runs_at_fit=runs.n_runs,
+        proposals=_to_physical(spec, fresh),
+        predictions=np.zeros((0, spec.output_size), dtype=np.float32),
+        pool=state.pool,
+        summary=summary,
+        history=state.history,
+        rng=rng.bit_generator.state,
+        surrogate=state.surrogate,
+        arrays=state.arrays,
+    )
+
+
+def _json_safe(value: Any) -> Any:
+    """Arrays to lists and non-finite floats to None, so the summary is strict JSON."""
+    if isinstance(value, dict):
+        return {k: _json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_json_safe(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return _json_safe(value.tolist())
+    if isinstance(value, np.floating | float):
+        f = float(value)
+        return f if np.isfinite(f) else None
+    if isinstance(value, np.integer):
+        return int(value)
+    return value

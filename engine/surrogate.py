@@ -1,0 +1,194 @@
+"""The surrogate: a sparse polynomial chaos expansion per output component, in a local frame.
+
+Reference coordinates ``xi`` (see `honing.engine.priors`) are mapped affinely to local
+coordinates ``z = (xi - center) / scale`` centred and scaled on the retained runs. A
+total-degree polynomial space is unchanged by an affine map, so the local frame costs nothing
+in what the surrogate can represent, and it keeps the design matrix well conditioned when the
+posterior is narrow and far from the prior's centre. Every component's sparse expansion is
+merged into one basis with a coefficient matrix, so a prediction costs one design matrix.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from honing.engine.bases import PolynomialBasis
+from honing.engine.likelihood import OutputReduction
+from honing.engine.priors import Family
+from honing.engine.regression import fit_degree_adaptive
+
+__all__ = ["Frame", "Surrogate", "fit_surrogate"]
+
+#: Smallest scale of a local coordinate, relative to the reference variable's own spread; keeps
+#: the frame invertible when every retained run shares one value of a parameter.
+MIN_SCALE = 1e-9
+#: Hyperbolic truncation of the candidate basis (q-norm); q < 1 drops high-order interactions
+#: first, the usual choice for sparse expansions (Blatman and Sudret, 2011).
+Q_NORM = 0.75
+#: Largest candidate basis tried for one degree.
+MAX_CANDIDATE_TERMS = 3000
+
+
+@dataclass
+class Frame:
+    """Affine map from reference to local coordinates, with the basis family per dimension."""
+
+    center: np.ndarray
+    scale: np.ndarray
+    families: tuple[Family, ...]
+
+    @classmethod
+    def prior(cls, families: Sequence[Family]) -> Frame:
+        """The identity frame with the priors' own families: a classic, global expansion."""
+        d = len(families)
+        return cls(np.zeros(d), np.ones(d), tuple(families))
+
+    @classmethod
+    def local(cls, xi: np.ndarray, weights: np.ndarray) -> Frame:
+        """A frame centred on the weighted mean of the runs and scaled by their weighted sd.
+
+        Local coordinates then have roughly unit spread, which suits the Hermite family.
+        """
+        w = weights / weights.sum()
+        center = w @ xi
+        scale = np.sqrt(w @ (xi - center) ** 2)
+        scale = np.maximum(scale, MIN_SCALE)
+        return cls(center, scale, ("hermite",) * xi.shape[1])
+
+    def to_local(self, xi: np.ndarray) -> np.ndarray:
+        return (xi - self.center) / self.scale
+
+
+@dataclass
+class Surrogate:
+    """Predicts whitened residuals from reference coordinates.
+
+    Attributes
+    ----------
+    frame : Frame
+    reduction : OutputReduction
+    basis : PolynomialBasis
+        Union of every component's selected terms.
+    coef : ndarray, shape (n_terms, n_components)
+    degree : int
+        Largest total degree selected for any component.
+    loo_error : ndarray, shape (n_components,)
+        Corrected leave-one-out relative error of each component's fit.
+    """
+
+    frame: Frame
+    reduction: OutputReduction
+    basis: PolynomialBasis
+    coef: np.ndarray
+    degree: int
+    loo_error: np.ndarray
+
+    @property
+    def n_terms(self) -> int:
+        return self.basis.n_terms
+
+    def scores(self, xi: np.ndarray) -> np.ndarray:
+        """Component scores at points, shape ``(n_points, n_components)``."""
+        return self.basis.design_matrix(self.frame.to_local(np.atleast_2d(xi))) @ self.coef
+
+    def residuals(self, xi: np.ndarray) -> np.ndarray:
+        """Whitened residuals at points, shape ``(n_points, output_size)``."""
+        return self.reduction.reconstruct(self.scores(xi))
+
+    def misfit(self, xi: np.ndarray) -> np.ndarray:
+        """Predicted ``||w||^2`` at points, shape ``(n_points,)``."""
+        return self.reduction.misfit(self.scores(xi))
+
+    def to_payload(self) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
+        """JSON-able metadata and named arrays (see `honing.engine.state`)."""
+        red_meta, red_arrays = self.reduction.to_payload("reduction.")
+        meta = {
+            "families": list(self.frame.families),
+            "basis": self.basis.to_dict(),
+            "degree": self.degree,
+            "reduction": red_meta,
+        }
+        arrays = {
+            "frame.center": self.frame.center,
+            "frame.scale": self.frame.scale,
+            "coef": self.coef,
+            "loo_error": self.loo_error,
+            **red_arrays,
+        }
+        return meta, arrays
+
+    @classmethod
+    def from_payload(cls, meta: dict[str, Any], arrays: dict[str, np.ndarray]) -> Surrogate:
+        frame = Frame(arrays["frame.center"], arrays["frame.scale"], tuple(meta["families"]))
+        return cls(
+            frame=frame,
+            reduction=OutputReduction.from_payload(meta["reduction"], arrays, "reduction."),
+            basis=PolynomialBasis.from_dict(meta["basis"]),
+            coef=arrays["coef"],
+            degree=int(meta["degree"]),
+            loo_error=arrays["loo_error"],
+        )
+
+
+def fit_surrogate(
+    xi: np.ndarray,
+    residuals: np.ndarray,
+    weights: np.ndarray,
+    frame: Frame,
+    max_degree: int,
+) -> Surrogate:
+    """Fit the reduction and one sparse expansion per component on weighted runs.
+
+    Parameters
+    ----------
+    xi : ndarray, shape (n_runs, dim)
+        Reference coordinates of the retained runs.
+    residuals : ndarray, shape (n_runs, output_size)
+        Their whitened residuals.
+    weights : ndarray, shape (n_runs,)
+        Trust weights in (0, 1].
+    frame : Frame
+    max_degree : int
+        Largest total degree tried.
+
+    Returns
+    -------
+    Surrogate
+    """
+    reduction = OutputReduction.fit(residuals, weights)
+    targets = reduction.project(residuals)
+    z = frame.to_local(xi)
+    fits = [
+        fit_degree_adaptive(
+            z,
+            targets[:, j],
+            frame.families,
+            max_degree,
+            sample_weight=weights,
+            q=Q_NORM,
+            max_terms=MAX_CANDIDATE_TERMS,
+        )
+        for j in range(targets.shape[1])
+    ]
+    index_rows: dict[tuple[int, ...], int] = {}
+    for basis, _ in fits:
+        for row in basis.indices:
+            index_rows.setdefault(tuple(int(a) for a in row), len(index_rows))
+    indices = np.array(sorted(index_rows, key=lambda r: (sum(r), r)), dtype=np.int64)
+    position = {tuple(int(a) for a in row): i for i, row in enumerate(indices)}
+    coef = np.zeros((len(indices), len(fits)))
+    for j, (basis, fit) in enumerate(fits):
+        for row, c in zip(basis.indices, fit.coef, strict=True):
+            coef[position[tuple(int(a) for a in row)], j] = c
+    return Surrogate(
+        frame=frame,
+        reduction=reduction,
+        basis=PolynomialBasis(indices, frame.families),
+        coef=coef,
+        degree=int(indices.sum(axis=1).max()),
+        loo_error=np.array([fit.loo_error for _, fit in fits]),
+    )

@@ -1,0 +1,51 @@
+import numpy as np
+import pytest
+from scipy import stats
+
+from honing.engine.diagnostics import gaussian_kl, kl_tolerance, trust_from_error
+
+
+def test_gaussian_kl_one_dimension_closed_form():
+    # KL(N(m0, s0^2) || N(m1, s1^2)) = ln(s1/s0) + (s0^2 + (m0 - m1)^2) / (2 s1^2) - 1/2
+    # (a standard result, e.g. Bishop 2006, exercise 1.30 / any information-theory text).
+    m0, s0, m1, s1 = 0.3, 0.7, -0.4, 1.3
+    expected = np.log(s1 / s0) + (s0**2 + (m0 - m1) ** 2) / (2 * s1**2) - 0.5
+    assert gaussian_kl([m0], [[s0**2]], [m1], [[s1**2]]) == pytest.approx(expected, rel=1e-12)
+
+
+def test_gaussian_kl_matches_monte_carlo_with_scipy_densities():
+    rng = np.random.default_rng(0)
+    d = 4
+    a, b = rng.normal(size=(d, d)), rng.normal(size=(d, d))
+    s0, s1 = a @ a.T + d * np.eye(d), b @ b.T + d * np.eye(d)
+    m0, m1 = rng.normal(size=d), rng.normal(size=d)
+    p, q = stats.multivariate_normal(m0, s0), stats.multivariate_normal(m1, s1)
+    x = p.rvs(size=400_000, random_state=rng)
+    ratio = p.logpdf(x) - q.logpdf(x)
+    # Tolerance: 5 Monte Carlo standard errors of the sample mean of the log ratio.
+    tol = 5 * ratio.std() / np.sqrt(x.shape[0])
+    assert gaussian_kl(m0, s0, m1, s1) == pytest.approx(ratio.mean(), abs=tol)
+
+
+def test_gaussian_kl_zero_for_identical():
+    assert gaussian_kl(np.zeros(3), np.eye(3), np.zeros(3), np.eye(3)) == pytest.approx(0, abs=1e-12)
+
+
+def test_kl_tolerance_covers_sampling_noise_between_fits():
+    # Two Gaussian fits to independent draws of the same posterior must pass as "no change".
+    rng = np.random.default_rng(1)
+    d, n = 6, 1000
+    cov = np.diag(np.linspace(0.5, 2.0, d))
+    fits = []
+    for _ in range(2):
+        x = rng.multivariate_normal(np.zeros(d), cov, size=n)
+        fits.append((x.mean(0), np.cov(x, rowvar=False)))
+    assert gaussian_kl(*fits[0], *fits[1]) < kl_tolerance(d, n)
+
+
+def test_trust_is_one_for_perfect_and_decreasing():
+    values = [trust_from_error(e) for e in (0.0, 0.5, 1.0, 2.0, 4.0, 100.0)]
+    assert values[0] == 1.0
+    assert all(a > b for a, b in zip(values[:-2], values[1:-1], strict=True))
+    assert 0 < values[-1] <= values[-2]
+    assert trust_from_error(float("nan")) == values[-1]

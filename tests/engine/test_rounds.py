@@ -1,0 +1,206 @@
+"""Statistical checks of the whole calibration loop against outside references."""
+
+import emcee
+import numpy as np
+import pytest
+from scipy import integrate
+
+from honing.engine.diagnostics import gaussian_kl
+from honing.engine.errors import ConflictError
+from honing.engine.loop import CalibrationLoop
+from honing.engine.rounds import refit
+from honing.engine.spec import CalibrationSpec
+from honing.engine.state import state_from_bytes, state_to_bytes
+
+# Monte Carlo error of a posterior mean from >= 1000 effective draws is <= 0.032 sd; of an sd,
+# about 1/sqrt(2 ess) <= 0.022 relative. Tolerances below are about 4.5 such standard errors,
+# plus what the reference itself contributes where it is sampled.
+MEAN_TOL_SD = 0.15
+SD_REL_TOL = 0.10
+
+
+def _spec(parameters, observations, **extra):
+    return CalibrationSpec.from_dict(
+        {"name": "check", "parameters": parameters, "observations": observations, **extra}
+    )
+
+
+def _moments(loop):
+    pool = loop.state.pool[:, : loop.spec.dim]
+    return pool.mean(axis=0), pool.std(axis=0, ddof=1)
+
+
+@pytest.mark.slow
+def test_linear_gaussian_matches_conjugate_posterior():
+    # y = A theta + e with independent normal priors: the posterior is Gaussian with
+    # S_N^-1 = S_0^-1 + A^T A / sigma^2 and m_N = S_N (S_0^-1 m_0 + A^T y / sigma^2)
+    # (Bishop, 2006, Pattern Recognition and Machine Learning, eqs. 3.50-3.51).
+    rng = np.random.default_rng(11)
+    d, n_out, sigma = 8, 24, 0.05
+    a = rng.normal(size=(n_out, d))
+    m0, s0 = rng.normal(size=d), rng.uniform(0.5, 2.0, size=d)
+    truth = m0 + s0 * rng.normal(size=d)
+    y = a @ truth + sigma * rng.normal(size=n_out)
+    spec = _spec(
+        [{"name": f"p{i}", "prior": {"kind": "normal", "mean": m0[i], "sd": s0[i]}}
+         for i in range(d)],
+        [{"name": "y", "values": y.tolist(), "sd": sigma}],
+        design={"initial_runs": 12, "batch_size": 6},
+        budget={"max_runs": 30},
+        seed=3,
+    )
+    loop = CalibrationLoop(spec)
+    loop.run(lambda p: {"y": (a @ np.array([p[f"p{i}"] for i in range(d)])).tolist()})
+    prec = np.diag(1 / s0**2) + a.T @ a / sigma**2
+    cov = np.linalg.inv(prec)
+    mean = cov @ (m0 / s0**2 + a.T @ y / sigma**2)
+    got_mean, got_sd = _moments(loop)
+    sd = np.sqrt(np.diag(cov))
+    assert len(loop.finished) <= 30
+    np.testing.assert_array_less(np.abs(got_mean - mean) / sd, MEAN_TOL_SD)
+    np.testing.assert_allclose(got_sd, sd, rtol=SD_REL_TOL)
+    # Correlations too: the sampled covariance against the conjugate one, in nats.
+    pool = loop.state.pool
+    assert gaussian_kl(pool.mean(0), np.cov(pool, rowvar=False), mean, cov) < 0.05
+
+
+def _decay(theta, t):
+    return np.exp(-theta * t) + 0.5 * np.exp(-3 * theta * t)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("sigma", [0.05, 0.005, 0.0005])
+def test_nonlinear_1d_matches_quadrature(sigma):
+    t = np.linspace(0.1, 2.0, 12)
+    rng = np.random.default_rng(5)
+    y = _decay(1.3, t) + sigma * rng.normal(size=t.size)
+    spec = _spec(
+        [{"name": "rate", "prior": {"kind": "uniform", "low": 0.2, "high": 3.0}}],
+        [{"name": "signal", "values": y.tolist(), "sd": sigma, "coords": t.tolist()}],
+        design={"initial_runs": 8, "batch_size": 4},
+        budget={"max_runs": 40},
+        seed=1,
+    )
+    loop = CalibrationLoop(spec)
+    loop.run(lambda p: {"signal": _decay(p["rate"], t).tolist()})
+    # Reference: the posterior on a dense grid, integrated with Simpson's rule
+    # (scipy.integrate.simpson); the grid is refined around the mode so the narrowest case
+    # has thousands of points across its width.
+    coarse = np.linspace(0.2, 3.0, 20001)
+    loglik = lambda th: -0.5 * np.sum((_decay(th[:, None], t) - y) ** 2, axis=1) / sigma**2
+    mode = coarse[np.argmax(loglik(coarse))]
+    width = 12 * sigma / np.sqrt(np.sum((t * np.exp(-1.3 * t)) ** 2))
+    grid = np.linspace(max(0.2, mode - width), min(3.0, mode + width), 40001)
+    dens = np.exp(loglik(grid) - loglik(grid).max())
+    z = integrate.simpson(dens, x=grid)
+    mean = integrate.simpson(grid * dens, x=grid) / z
+    sd = np.sqrt(integrate.simpson((grid - mean) ** 2 * dens, x=grid) / z)
+    got_mean, got_sd = _moments(loop)
+    assert len(loop.finished) <= 40
+    assert abs(got_mean[0] - mean) / sd < MEAN_TOL_SD
+    assert got_sd[0] == pytest.approx(sd, rel=SD_REL_TOL)
+
+
+@pytest.mark.slow
+def test_curved_2d_posterior_matches_emcee_on_true_model():
+    def model(th):
+        th = np.atleast_2d(th)
+        return np.column_stack([th[:, 0] + th[:, 1], th[:, 0] * th[:, 1], th[:, 0] ** 2])
+
+    sigma = np.array([0.3, 0.3, 0.6])
+    y = np.array([2.0, 0.8, 1.4])
+    spec = _spec(
+        [{"name": "a", "prior": {"kind": "normal", "mean": 1.0, "sd": 1.0}},
+         {"name": "b", "prior": {"kind": "uniform", "low": -2.0, "high": 3.0}}],
+        [{"name": "obs", "values": y.tolist(), "sd": sigma.tolist()}],
+        design={"initial_runs": 16, "batch_size": 8},
+        budget={"max_runs": 120},
+        seed=2,
+    )
+    loop = CalibrationLoop(spec)
+    loop.run(lambda p: {"obs": model([p["a"], p["b"]])[0].tolist()})
+
+    # Reference: emcee run directly on the true model, long enough for >> 50 tau.
+    def log_prob(th):
+        lp = -0.5 * (th[:, 0] - 1.0) ** 2 - 0.5 * np.sum(((model(th) - y) / sigma) ** 2, axis=1)
+        return np.where((th[:, 1] > -2) & (th[:, 1] < 3), lp, -np.inf)
+
+    ref_rng = np.random.default_rng(7)
+    start = np.column_stack([ref_rng.normal(1, 0.1, 64), ref_rng.uniform(0.5, 1.5, 64)])
+    sampler = emcee.EnsembleSampler(64, 2, log_prob, vectorize=True)
+    sampler.random_state = np.random.RandomState(7).get_state()
+    sampler.run_mcmc(start, 6000)
+    tau = sampler.get_autocorr_time(discard=1000)
+    ref = sampler.get_chain(discard=1000, flat=True, thin=max(1, int(tau.max() / 2)))
+    ref_mean, ref_sd = ref.mean(0), ref.std(0, ddof=1)
+    got_mean, got_sd = _moments(loop)
+    # Both sides are sampled here (reference ess ~ 64 * 5000 / tau, in the thousands), so
+    # the tolerance adds their errors in quadrature: still under MEAN_TOL_SD * sqrt(2).
+    np.testing.assert_array_less(np.abs(got_mean - ref_mean) / ref_sd, MEAN_TOL_SD * np.sqrt(2))
+    np.testing.assert_allclose(got_sd, ref_sd, rtol=SD_REL_TOL * np.sqrt(2))
+
+
+def _small_loop(seed=4):
+    t = np.linspace(0.0, 1.0, 5)
+    spec = _spec(
+        [{"name": "k", "prior": {"kind": "lognormal", "median": 1.0, "sigma_log": 0.5}},
+         {"name": "c", "prior": {"kind": "uniform", "low": 0.0, "high": 2.0}}],
+        [{"name": "y", "values": (np.exp(-1.2 * t) + 0.8).tolist(), "sd": 0.05}],
+        design={"initial_runs": 10, "batch_size": 5},
+        budget={"max_runs": 30},
+        seed=seed,
+    )
+    return spec, (lambda p: {"y": (np.exp(-p["k"] * t) + p["c"]).tolist()})
+
+
+def test_same_spec_and_results_give_same_proposals():
+    spec, sim = _small_loop()
+    first, second = CalibrationLoop(spec), CalibrationLoop(spec)
+    for loop in (first, second):
+        for _ in range(3):
+            for p in loop.ask(5):
+                loop.tell(p.point_id, outputs=sim(spec.parameters_dict(p.theta)))
+    assert first.state.round == second.state.round >= 1
+    np.testing.assert_array_equal(first.state.proposals, second.state.proposals)
+    np.testing.assert_array_equal(first.state.pool, second.state.pool)
+
+
+def test_state_round_trip_then_continue_identically():
+    spec, sim = _small_loop()
+    loop = CalibrationLoop(spec)
+    for p in loop.ask(15):
+        loop.tell(p.point_id, outputs=sim(spec.parameters_dict(p.theta)))
+    assert loop.state.round == 1
+    blob = state_to_bytes(loop.state)
+    restored = state_from_bytes(blob)
+    assert state_to_bytes(restored) == blob
+    for p in loop.ask(5):
+        loop.tell(p.point_id, outputs=sim(spec.parameters_dict(p.theta)))
+    runs = loop.runs()
+    a = refit(spec, state_from_bytes(blob), runs)
+    b = refit(spec, restored, runs)
+    np.testing.assert_array_equal(a.proposals, b.proposals)
+    np.testing.assert_array_equal(a.predictions, b.predictions)
+    assert a.summary == b.summary
+
+
+def test_duplicate_result_is_noop_and_conflict_raises():
+    spec, sim = _small_loop()
+    loop = CalibrationLoop(spec)
+    p = loop.ask(1)[0]
+    outputs = sim(spec.parameters_dict(p.theta))
+    first = loop.tell(p.point_id, outputs=outputs)
+    assert loop.tell(p.point_id, outputs=outputs) == first
+    with pytest.raises(ConflictError):
+        loop.tell(p.point_id, error="crashed")
+    assert len(loop.finished) == 1
+
+
+def test_budget_is_never_exceeded_and_reported():
+    spec, sim = _small_loop()
+    loop = CalibrationLoop(spec)
+    loop.run(lambda p: sim(p), workers=3)
+    assert len(loop.proposals) <= spec.max_runs
+    assert loop.status in ("converged", "budget_exhausted")
+    if loop.status == "budget_exhausted":
+        assert len(loop.finished) == spec.max_runs

@@ -1,0 +1,104 @@
+import numpy as np
+import pytest
+
+from honing.engine.errors import SpecError
+from honing.engine.spec import CalibrationSpec
+
+
+def _spec(**extra):
+    base = {
+        "name": "column",
+        "parameters": [
+            {"name": "velocity", "prior": {"kind": "uniform", "low": 0.05, "high": 2.0}},
+            {"name": "dispersivity", "prior": {"kind": "lognormal", "median": 0.02,
+                                               "sigma_log": 0.8}},
+        ],
+        "observations": [
+            {"name": "port_1", "values": [0.0, 0.12, 0.55], "sd": [0.02, 0.02, 0.03]},
+            {"name": "port_2", "values": [0.0, 0.01], "sd": 0.02},
+        ],
+    }
+    base.update(extra)
+    return base
+
+
+def _locs(exc_info):
+    return [tuple(e["loc"]) for e in exc_info.value.errors]
+
+
+def test_defaults_filled_and_round_trip():
+    spec = CalibrationSpec.from_dict(_spec())
+    assert spec.noise_scale == "fixed"
+    assert spec.retain_fraction == 0.5
+    assert spec.max_runs == 400
+    # Documented default: four times a linear basis' size, at least 10.
+    assert spec.initial_runs == max(10, 4 * (spec.dim + 1))
+    again = CalibrationSpec.from_dict(spec.to_dict())
+    assert again.to_dict() == spec.to_dict()
+    np.testing.assert_array_equal(spec.sd, [0.02, 0.02, 0.03, 0.02, 0.02])
+
+
+@pytest.mark.parametrize(
+    ("change", "loc"),
+    [
+        ({"name": ""}, ("name",)),
+        ({"seed": True}, ("seed",)),
+        ({"noise": {"scale": "guess"}}, ("noise", "scale")),
+        ({"design": {"batch_size": 0}}, ("design", "batch_size")),
+        ({"design": {"initial_runs": "24"}}, ("design", "initial_runs")),
+        ({"surrogate": {"retain_fraction": 1.5}}, ("surrogate", "retain_fraction")),
+        ({"budget": {"max_runs": 10**9}}, ("budget", "max_runs")),
+        ({"colour": "red"}, ("colour",)),
+    ],
+)
+def test_bad_settings_name_their_field(change, loc):
+    with pytest.raises(SpecError) as exc_info:
+        CalibrationSpec.from_dict(_spec(**change))
+    assert loc in _locs(exc_info)
+
+
+def test_bad_parameter_and_observation_fields_are_located():
+    data = _spec()
+    data["parameters"][1]["prior"]["sigma_log"] = -1.0
+    data["observations"][0]["sd"] = [0.02, 0.02]
+    data["observations"][1]["values"] = [0.0, float("nan")]
+    with pytest.raises(SpecError) as exc_info:
+        CalibrationSpec.from_dict(data)
+    locs = _locs(exc_info)
+    assert ("parameters", 1, "prior", "sigma_log") in locs
+    assert ("observations", 0, "sd") in locs
+    assert ("observations", 1, "values", 1) in locs
+
+
+def test_duplicate_names_rejected():
+    data = _spec()
+    data["parameters"][1]["name"] = "velocity"
+    with pytest.raises(SpecError) as exc_info:
+        CalibrationSpec.from_dict(data)
+    assert ("parameters", 1, "name") in _locs(exc_info)
+
+
+def test_outputs_validated_by_channel():
+    spec = CalibrationSpec.from_dict(_spec())
+    flat = spec.flatten_outputs({"port_1": [1, 2, 3], "port_2": [4.0, 5.0]})
+    np.testing.assert_array_equal(flat, [1, 2, 3, 4, 5])
+    assert spec.split_outputs(flat) == {"port_1": [1.0, 2.0, 3.0], "port_2": [4.0, 5.0]}
+    bad = [
+        ({"port_1": [1, 2, 3]}, ("outputs", "port_2")),
+        ({"port_1": [1, 2], "port_2": [4, 5]}, ("outputs", "port_1")),
+        ({"port_1": [1, 2, 3], "port_2": [4, 5], "port_9": [1]}, ("outputs", "port_9")),
+        ({"port_1": [1, "2", 3], "port_2": [4, 5]}, ("outputs", "port_1", 1)),
+        ({"port_1": [1, True, 3], "port_2": [4, 5]}, ("outputs", "port_1", 1)),
+        ({"port_1": [1, 2, float("inf")], "port_2": [4, 5]}, ("outputs", "port_1", 2)),
+    ]
+    for outputs, loc in bad:
+        with pytest.raises(SpecError) as exc_info:
+            spec.flatten_outputs(outputs)
+        assert loc in _locs(exc_info), outputs
+
+
+def test_parameters_outside_support_rejected():
+    spec = CalibrationSpec.from_dict(_spec())
+    with pytest.raises(SpecError) as exc_info:
+        spec.theta_from_dict({"velocity": 5.0, "dispersivity": 0.1}, ("parameters",))
+    assert ("parameters", "velocity") in _locs(exc_info)

@@ -1,0 +1,425 @@
+"""The worker loop: lease points, run a command for each, report the outputs.
+
+The command sees, in its environment, ``HONING_PARAMS`` (path of a JSON file
+``{name: value}``), ``HONING_P_<name>`` (each value as text), ``HONING_RUN_ID`` and
+``HONING_OUTPUTS`` (where it writes ``{observation name: [numbers]}``); ``{name}`` in its
+arguments is replaced by that parameter's value. A non-zero exit, a missing or malformed
+outputs file, or a timeout is reported as a failed run with the tail of the command's stderr.
+
+Stopping is gradual: the first `Worker.stop` stops leasing and lets the commands in hand
+finish and be reported; the second terminates them and reports them as failed; the third
+abandons results the server has not yet acknowledged (their leases expire and the points are
+handed out again).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import queue
+import re
+import signal
+import socket
+import subprocess
+import tempfile
+import threading
+import time
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Any
+
+from honing.client._client import FINISHED, Client
+from honing.client.errors import ClientError, Conflict, NotFound, ValidationFailed
+
+__all__ = ["Progress", "RunResult", "Worker", "WorkerOptions", "run_command", "substitute"]
+
+#: Characters of stderr kept in a failure message (the end of the stream).
+STDERR_TAIL = 2000
+#: Seconds a terminated command gets before it is killed.
+KILL_GRACE = 5.0
+#: Seconds between progress refreshes from the server (round, validation error).
+PROGRESS_POLL = 2.0
+
+_PLACEHOLDER = re.compile(r"\{([A-Za-z0-9_.\-]+)\}")
+
+
+@dataclass(frozen=True)
+class WorkerOptions:
+    """How a worker runs: the command, parallelism, timeouts and its name on the server."""
+
+    command: Sequence[str]
+    jobs: int = 1
+    run_timeout: float | None = None
+    lease_seconds: float = 900.0
+    name: str = ""
+    max_idle_wait: float = 5.0
+
+
+@dataclass(frozen=True)
+class Progress:
+    """What a worker has done so far, and the calibration's latest state."""
+
+    done: int = 0
+    failed: int = 0
+    running: int = 0
+    round: int | None = None
+    validation_error: float | None = None
+    status: str = ""
+    stopping: bool = False
+
+
+@dataclass(frozen=True)
+class RunResult:
+    """The outcome of one command: outputs, or an error message."""
+
+    run_id: str
+    outputs: dict[str, list[float]] | None = None
+    error: str | None = None
+
+
+def substitute(args: Sequence[str], parameters: Mapping[str, Any]) -> list[str]:
+    """Replace ``{name}`` in each argument by that parameter's value; other braces stay."""
+
+    def one(match: re.Match[str]) -> str:
+        name = match.group(1)
+        return _text(parameters[name]) if name in parameters else match.group(0)
+
+    return [_PLACEHOLDER.sub(one, a) for a in args]
+
+
+def run_command(
+    command: Sequence[str],
+    run: Mapping[str, Any],
+    timeout: float | None = None,
+    started: Callable[[subprocess.Popen[bytes]], None] | None = None,
+    interrupted: Callable[[], bool] = lambda: False,
+) -> RunResult:
+    """Run ``command`` for one leased run and read its outputs file.
+
+    ``started`` receives the process (so that a caller can terminate it); ``interrupted``
+    tells, after a command died of a signal, whether the worker stopped it on purpose.
+    """
+    run_id = str(run["run_id"])
+    parameters = dict(run.get("parameters") or {})
+    with tempfile.TemporaryDirectory(prefix="honing-run-") as folder:
+        here = Path(folder)
+        params_path, outputs_path = here / "params.json", here / "outputs.json"
+        params_path.write_text(json.dumps(parameters), encoding="utf-8")
+        env = dict(os.environ)
+        env.update(
+            HONING_PARAMS=str(params_path),
+            HONING_OUTPUTS=str(outputs_path),
+            HONING_RUN_ID=run_id,
+        )
+        for name, value in parameters.items():
+            env[f"HONING_P_{name}"] = _text(value)
+            env[f"HONING_P_{re.sub(r'[^A-Za-z0-9_]', '_', name)}"] = _text(value)
+        argv = substitute(command, parameters)
+        with (here / "stdout").open("wb") as out, (here / "stderr").open("wb") as err:
+            try:
+                proc = subprocess.Popen(
+                    argv,
+                    env=env,
+                    stdin=subprocess.DEVNULL,
+                    stdout=out,
+                    stderr=err,
+                    start_new_session=True,
+                )
+            except OSError as exc:
+                return RunResult(run_id, error=f"cannot start {argv[0]!r}: {exc.strerror or exc}")
+            if started is not None:
+                started(proc)
+            problem = _wait(proc, timeout, interrupted)
+        if problem is None:
+            outputs, problem = _read_outputs(outputs_path)
+            if outputs is not None:
+                return RunResult(run_id, outputs=outputs)
+        tail = _tail(here / "stderr")
+        return RunResult(run_id, error=problem + (f"; stderr: {tail}" if tail else ""))
+
+
+class Worker:
+    """Lease, run and report until the calibration stops handing out work.
+
+    Parameters
+    ----------
+    client
+        A `Client` holding the calibration's token.
+    calibration_id
+        The calibration to work on.
+    options
+        The `WorkerOptions`.
+    on_progress
+        Called with a `Progress` after every change (from the thread calling `run`).
+    """
+
+    def __init__(
+        self,
+        client: Client,
+        calibration_id: str,
+        options: WorkerOptions,
+        on_progress: Callable[[Progress], None] | None = None,
+    ) -> None:
+        self.client = client
+        self.calibration_id = calibration_id
+        self.options = options
+        self.on_progress = on_progress
+        self.name = options.name or f"{socket.gethostname()}:{os.getpid()}"
+        self.progress = Progress()
+        self.error: ClientError | None = None
+        self._stops = 0
+        self._finished: queue.Queue[tuple[str, str]] = queue.Queue()
+        self._procs: dict[str, subprocess.Popen[bytes]] = {}
+        self._lock = threading.Lock()
+
+    @property
+    def stops(self) -> int:
+        """How many times `stop` was called."""
+        return self._stops
+
+    def stop(self) -> None:
+        """Ask the worker to stop; each further call is firmer (see the module docstring)."""
+        self._stops += 1
+
+    def run(self) -> Progress:
+        """Work until done or stopped; returns the final `Progress` (``status`` tells why).
+
+        A client error that makes further work impossible (the calibration was deleted, the
+        token is refused, the server stays unreachable) ends the loop and is kept in `error`.
+        """
+        active: dict[str, threading.Thread] = {}
+        next_lease = 0.0
+        next_poll = 0.0
+        finished = False
+        killed = abandoned = False
+        while True:
+            self._collect(active)
+            if self._stops >= 2 and not killed:
+                killed = True
+                self._terminate_all()
+            if self._stops >= 3 and not abandoned:
+                abandoned = True
+                self.client.cancel()
+            if abandoned or ((finished or self._stops or self.error) and not active):
+                break
+            now = time.monotonic()
+            can_lease = not (finished or self._stops or self.error)
+            if can_lease and len(active) < self.options.jobs and now >= next_lease:
+                lease_wait = self._lease(active)
+                if lease_wait is None:
+                    finished = self.progress.status in FINISHED
+                    continue
+                next_lease = time.monotonic() + lease_wait
+            if self.on_progress is not None and now >= next_poll and not self._stops:
+                next_poll = now + PROGRESS_POLL
+                self._poll()
+            self._collect(active, wait=max(0.05, min(next_lease - time.monotonic(), 0.5)))
+        self._update(running=len(active), stopping=bool(self._stops))
+        if not self._stops and not self.error:
+            self._poll()
+        return self.progress
+
+    # -- internals -----------------------------------------------------------------------
+
+    def _lease(self, active: dict[str, threading.Thread]) -> float | None:
+        """Lease for the free slots and start them; seconds until the next try, or None."""
+        free = self.options.jobs - len(active)
+        try:
+            lease = self.client.lease(
+                self.calibration_id, free, self.name, self.options.lease_seconds
+            )
+        except ClientError as exc:
+            self.error = exc
+            return None
+        self._update(status=lease.status)
+        for run in lease.runs:
+            thread = threading.Thread(target=self._execute, args=(run,), daemon=True)
+            active[str(run["run_id"])] = thread
+            thread.start()
+        self._update(running=len(active))
+        if lease.runs:
+            return 0.0
+        if lease.status in FINISHED:
+            return None
+        hint = lease.retry_after if lease.retry_after is not None else 1.0
+        return min(max(hint, 0.1), self.options.max_idle_wait)
+
+    def _execute(self, run: Mapping[str, Any]) -> None:
+        run_id = str(run["run_id"])
+        result = run_command(
+            self.options.command,
+            run,
+            self.options.run_timeout,
+            started=lambda proc: self._register(run_id, proc),
+            interrupted=lambda: self._stops >= 2,
+        )
+        with self._lock:
+            self._procs.pop(run_id, None)
+        outcome = "error"
+        try:
+            outcome = self._report(result)
+        except ClientError as exc:
+            if self.error is None:
+                self.error = exc
+        finally:
+            self._finished.put((run_id, outcome))
+
+    def _report(self, result: RunResult) -> str:
+        cid, rid = self.calibration_id, result.run_id
+        if result.outputs is not None:
+            try:
+                self.client.report(cid, rid, outputs=result.outputs)
+                return "done"
+            except ValidationFailed as exc:
+                # The outputs do not fit the spec (names, lengths): record why, as a failure.
+                self.client.report(cid, rid, error=f"outputs refused by the server: {exc}")
+                return "failed"
+            except Conflict:
+                return "conflict"
+        try:
+            self.client.report(cid, rid, error=result.error or "failed")
+        except Conflict:
+            return "conflict"
+        return "failed"
+
+    def _register(self, run_id: str, proc: subprocess.Popen[bytes]) -> None:
+        with self._lock:
+            self._procs[run_id] = proc
+        if self._stops >= 2:
+            _terminate(proc)
+
+    def _terminate_all(self) -> None:
+        with self._lock:
+            procs = list(self._procs.values())
+        for proc in procs:
+            _terminate(proc)
+
+    def _collect(self, active: dict[str, threading.Thread], wait: float = 0.0) -> None:
+        """Count the runs reported since the last call, waiting up to ``wait`` s for one."""
+        changed = False
+        while True:
+            try:
+                run_id, outcome = (
+                    self._finished.get(timeout=wait) if wait else self._finished.get_nowait()
+                )
+            except queue.Empty:
+                break
+            wait = 0.0
+            active.pop(run_id, None)
+            changed = True
+            if outcome == "done":
+                self._update(done=self.progress.done + 1)
+            elif outcome == "failed":
+                self._update(failed=self.progress.failed + 1)
+        if changed:
+            self._update(running=len(active), stopping=bool(self._stops))
+        elif self._stops and not self.progress.stopping:
+            self._update(stopping=True)
+
+    def _poll(self) -> None:
+        try:
+            summary = self.client.posterior(self.calibration_id)
+        except ClientError as exc:
+            if isinstance(exc, NotFound) and self.error is None:
+                self.error = exc
+            return
+        diagnostics = summary.get("diagnostics") or {}
+        error = diagnostics.get("validation_error")
+        self._update(
+            round=summary.get("round"),
+            validation_error=float(error) if isinstance(error, int | float) else None,
+            status=str(summary.get("status") or self.progress.status),
+        )
+
+    def _update(self, **changes: Any) -> None:
+        new = replace(self.progress, **changes)
+        if new != self.progress:
+            self.progress = new
+            if self.on_progress is not None:
+                self.on_progress(new)
+
+
+def _text(value: Any) -> str:
+    if isinstance(value, float):
+        return repr(value)
+    return str(value)
+
+
+def _wait(
+    proc: subprocess.Popen[bytes], timeout: float | None, interrupted: Callable[[], bool]
+) -> str | None:
+    """Wait for the command; None when it exited with status 0, else why it failed."""
+    try:
+        code = proc.wait(timeout=timeout)
+    except subprocess.TimeoutExpired:
+        _terminate(proc)
+        return f"timed out after {timeout:g} s (--run-timeout)"
+    if code == 0:
+        return None
+    if interrupted():
+        return "interrupted: the worker was stopped before the command finished"
+    if code < 0:
+        try:
+            name = signal.Signals(-code).name
+        except ValueError:
+            name = f"signal {-code}"
+        return f"the command was killed by {name}"
+    return f"the command exited with status {code}"
+
+
+def _terminate(proc: subprocess.Popen[bytes]) -> None:
+    """SIGTERM to the command's process group, SIGKILL if it lingers."""
+    if proc.poll() is not None:
+        return
+    try:
+        os.killpg(proc.pid, signal.SIGTERM)
+        proc.wait(timeout=KILL_GRACE)
+    except subprocess.TimeoutExpired:
+        os.killpg(proc.pid, signal.SIGKILL)
+        proc.wait()
+    except ProcessLookupError:
+        proc.wait()
+
+
+def _read_outputs(path: Path) -> tuple[dict[str, list[float]] | None, str]:
+    """Parse and check an outputs file: (outputs, "") or (None, why it is unusable)."""
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        return None, "the command wrote no outputs file (the path is in HONING_OUTPUTS)"
+    except (OSError, UnicodeDecodeError) as exc:
+        return None, f"cannot read the outputs file: {exc}"
+
+    def no_constants(name: str) -> float:
+        raise ValueError(f"{name} is not allowed")
+
+    try:
+        data = json.loads(text, parse_constant=no_constants)
+    except ValueError as exc:
+        return None, f"the outputs file is not valid JSON ({exc})"
+    if not isinstance(data, dict) or not data:
+        return None, "the outputs file must hold a JSON object {observation name: [numbers]}"
+    outputs: dict[str, list[float]] = {}
+    for name, values in data.items():
+        if not isinstance(values, list):
+            return None, f"outputs[{name!r}] must be a list of numbers"
+        for i, v in enumerate(values):
+            if not isinstance(v, int | float) or isinstance(v, bool) or not math.isfinite(v):
+                return None, f"outputs[{name!r}][{i}] is not a finite number: {v!r}"
+        outputs[str(name)] = [float(v) for v in values]
+    return outputs, ""
+
+
+def _tail(path: Path) -> str:
+    try:
+        with path.open("rb") as f:
+            f.seek(0, os.SEEK_END)
+            size = f.tell()
+            f.seek(max(0, size - 4 * STDERR_TAIL))
+            raw = f.read()
+    except OSError:
+        return ""
+    text = raw.decode("utf-8", errors="replace").strip()
+    return text[-STDERR_TAIL:]

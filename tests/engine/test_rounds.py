@@ -168,7 +168,7 @@ def test_same_spec_and_results_give_same_proposals():
 def test_state_round_trip_then_continue_identically():
     spec, sim = _small_loop()
     loop = CalibrationLoop(spec)
-    for p in loop.ask(15):
+    for p in loop.ask(10):
         loop.tell(p.point_id, outputs=sim(spec.parameters_dict(p.theta)))
     assert loop.state.round == 1
     blob = state_to_bytes(loop.state)

@@ -1,0 +1,121 @@
+"""Engine refit benchmark: one round (fit, sample, new batch) at the documented size.
+
+15 parameters, 1000 finished runs of which the newest 500 are retained, outputs of 3 channels
+x 200 values. Prints the median wall time over repeats, the peak traced memory of one refit,
+and how the time scales with runs and output length. Run:
+
+    .venv/bin/python tests/benchmarks/bench_engine.py [--repeats 5] [--long]
+
+Targets (not asserted): median under 2 s, peak memory under 300 MB on a 2-core machine.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import time
+import tracemalloc
+
+import numpy as np
+
+from honing.engine.rounds import refit, start
+from honing.engine.spec import CalibrationSpec
+from honing.engine.state import RunTable
+
+
+def scenario(dim: int, channels: int, length: int, seed: int = 0):
+    """A smooth invented model: decaying curves whose rates and levels mix the parameters."""
+    rng = np.random.default_rng(seed)
+    t = np.linspace(0.0, 1.0, length)
+    mix = rng.normal(scale=1.0 / np.sqrt(dim), size=(channels, 2, dim))
+    truth = rng.normal(scale=0.3, size=dim)
+
+    def model(theta: np.ndarray) -> np.ndarray:
+        theta = np.atleast_2d(theta)
+        out = []
+        for c in range(channels):
+            rate = 1.0 + 0.5 * np.tanh(theta @ mix[c, 0])
+            level = 1.0 + 0.3 * theta @ mix[c, 1] + 0.1 * (theta @ mix[c, 1]) ** 2
+            out.append(level[:, None] * np.exp(-rate[:, None] * t[None, :]))
+        return np.hstack(out)
+
+    sd = 0.01
+    data = model(truth)[0] + sd * rng.normal(size=channels * length)
+    spec = CalibrationSpec.from_dict(
+        {
+            "name": "bench",
+            "parameters": [
+                {"name": f"p{i}", "prior": {"kind": "normal", "mean": 0.0, "sd": 1.0}}
+                for i in range(dim)
+            ],
+            "observations": [
+                {"name": f"ch{c}", "values": data[c * length : (c + 1) * length].tolist(),
+                 "sd": sd}
+                for c in range(channels)
+            ],
+            "design": {"initial_runs": 64, "batch_size": 32},
+            "surrogate": {"max_degree": 4},
+            "budget": {"max_runs": 5000},
+        }
+    )
+    return spec, model, truth
+
+
+def runs_near(model, truth, n: int, spread: float, seed: int = 1) -> RunTable:
+    """Finished runs scattered around the truth, as a calibration's later rounds leave them."""
+    rng = np.random.default_rng(seed)
+    theta = truth + spread * rng.normal(size=(n, truth.size))
+    outputs = model(theta)
+    return RunTable(theta, outputs, np.zeros(n, bool), np.ones(n))
+
+
+def time_refit(spec, runs, repeats: int) -> dict:
+    state = refit(spec, start(spec), runs)  # a warm state, as later rounds have
+    times = []
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        refit(spec, state, runs)
+        times.append(time.perf_counter() - t0)
+    tracemalloc.start()
+    new = refit(spec, state, runs)
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    diag = new.summary["diagnostics"]
+    return {
+        "runs": runs.n_runs,
+        "outputs": spec.output_size,
+        "median_s": float(np.median(times)),
+        "min_s": float(np.min(times)),
+        "peak_traced_mb": peak / 2**20,
+        "terms": diag["surrogate_terms"],
+        "components": diag["surrogate_components"],
+        "chain_steps": diag["chain_steps"],
+        "tau_max": diag["tau_max"],
+        "ess_min": diag["ess_min"],
+    }
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--repeats", type=int, default=5)
+    parser.add_argument("--long", action="store_true", help="also 3 x 5000 outputs")
+    args = parser.parse_args()
+    rows = []
+    for n_runs, length in [(1000, 200), (500, 200), (2000, 200), (1000, 50)] + (
+        [(1000, 5000)] if args.long else []
+    ):
+        spec, model, truth = scenario(15, 3, length)
+        rows.append(time_refit(spec, runs_near(model, truth, n_runs, 0.05), args.repeats))
+        print(json.dumps(rows[-1]), flush=True)
+    print("\n| runs | outputs | median s | min s | peak MB | terms | comps | steps | tau | ess |")
+    print("| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |")
+    for r in rows:
+        print(
+            f"| {r['runs']} | {r['outputs']} | {r['median_s']:.2f} | {r['min_s']:.2f} | "
+            f"{r['peak_traced_mb']:.0f} | {r['terms']} | {r['components']} | "
+            f"{r['chain_steps']} | {r['tau_max']:.1f} | {r['ess_min']:.0f} |"
+        )
+
+
+if __name__ == "__main__":
+    main()

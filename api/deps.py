@@ -1,0 +1,49 @@
+"""Dependencies of the routes, as `Annotated` aliases."""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from fastapi import Depends, Request
+from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
+from honing.api.auth import check_token
+from honing.api.service import CalibrationService
+from honing.api.store import CalibrationMeta, Store
+
+__all__ = ["AdminAccess", "AuthorizedCalibration", "ServiceDep", "StoreDep"]
+
+_bearer = HTTPBearer(
+    auto_error=False,
+    description="the calibration token (or, to create one, the admin key when configured)",
+)
+Credentials = Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)]
+
+
+def _store(request: Request) -> Store:
+    return request.app.state.store  # type: ignore[no-any-return]
+
+
+def _service(request: Request) -> CalibrationService:
+    return request.app.state.service  # type: ignore[no-any-return]
+
+
+StoreDep = Annotated[Store, Depends(_store)]
+ServiceDep = Annotated[CalibrationService, Depends(_service)]
+
+
+def _authorized(
+    calibration_id: str, service: ServiceDep, credentials: Credentials
+) -> CalibrationMeta:
+    """The calibration of the path, once its token checks out (404 first if it is unknown)."""
+    return service.authorize(calibration_id, credentials.credentials if credentials else None)
+
+
+def _admin(request: Request, credentials: Credentials) -> None:
+    """Require the admin key when the server has one."""
+    expected = request.app.state.admin_key_hash
+    if expected is not None:
+        check_token(credentials.credentials if credentials else None, expected)
+
+
+AuthorizedCalibration = Annotated[CalibrationMeta, Depends(_authorized)]
+AdminAccess = Depends(_admin)

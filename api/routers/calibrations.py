@@ -1,0 +1,45 @@
+"""Calibrations: create, describe, delete."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter, Response, status
+from honing.api.deps import AdminAccess, AuthorizedCalibration, ServiceDep
+from honing.api.models import CalibrationResponse, CreateResponse, SpecRequest
+from honing.api.problems import problem_responses
+
+router = APIRouter(prefix="/v1/calibrations", tags=["calibrations"])
+
+
+@router.post(
+    "",
+    status_code=status.HTTP_201_CREATED,
+    response_model=CreateResponse,
+    dependencies=[AdminAccess],
+    responses=problem_responses(401, 403, 413, 422, 503),
+)
+def create_calibration(body: SpecRequest, service: ServiceDep) -> CreateResponse:
+    """Create a calibration from a spec; the answer carries its token (shown only once)."""
+    calibration_id, token, state = service.create(body.model_dump(exclude_unset=True))
+    return CreateResponse(id=calibration_id, token=token, status=state)  # type: ignore[arg-type]
+
+
+@router.get(
+    "/{calibration_id}",
+    response_model=CalibrationResponse,
+    responses=problem_responses(401, 403, 404, 503),
+)
+def get_calibration(meta: AuthorizedCalibration, service: ServiceDep) -> CalibrationResponse:
+    """Spec, status, counts and round."""
+    return CalibrationResponse(**service.describe(meta))
+
+
+@router.delete(
+    "/{calibration_id}",
+    status_code=status.HTTP_204_NO_CONTENT,
+    response_class=Response,
+    responses=problem_responses(401, 403, 404, 503),
+)
+def delete_calibration(meta: AuthorizedCalibration, service: ServiceDep) -> Response:
+    """Delete the calibration and all its runs."""
+    service.delete(meta.id)
+    return Response(status_code=status.HTTP_204_NO_CONTENT)

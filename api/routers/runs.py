@@ -1,0 +1,104 @@
+"""Runs: lease points, report results, import archives, list."""
+
+from __future__ import annotations
+
+import csv
+import io
+from typing import Annotated, Literal
+
+from fastapi import APIRouter, Query, Request, Response
+from honing.api.deps import AuthorizedCalibration, ServiceDep
+from honing.api.models import (
+    ImportRequest,
+    ImportResponse,
+    LeaseRequest,
+    LeaseResponse,
+    ReportRequest,
+    ReportResponse,
+    RunsResponse,
+)
+from honing.api.problems import problem_responses
+
+router = APIRouter(prefix="/v1/calibrations/{calibration_id}/runs", tags=["runs"])
+
+_CSV = {"text/csv": {"schema": {"type": "string"}}}
+
+
+@router.post(
+    "",
+    response_model=LeaseResponse,
+    responses=problem_responses(401, 403, 404, 413, 422, 503),
+)
+def lease_runs(
+    body: LeaseRequest,
+    meta: AuthorizedCalibration,
+    service: ServiceDep,
+    request: Request,
+    response: Response,
+) -> LeaseResponse:
+    """Lease up to ``count`` points; an empty list comes with Retry-After while work remains."""
+    seconds = body.lease_seconds or request.app.state.settings.lease_seconds
+    outcome = service.lease(meta, body.count, body.worker, seconds)
+    if outcome.retry_after is not None:
+        response.headers["Retry-After"] = str(outcome.retry_after)
+    return LeaseResponse(runs=outcome.runs, status=outcome.status)  # type: ignore[arg-type]
+
+
+@router.put(
+    "/{run_id}",
+    response_model=ReportResponse,
+    responses=problem_responses(401, 403, 404, 409, 413, 422, 503),
+)
+def report_run(
+    run_id: str, body: ReportRequest, meta: AuthorizedCalibration, service: ServiceDep
+) -> ReportResponse:
+    """Report one run's outputs or its failure; the same result again is a no-op."""
+    outcome = service.report(meta, run_id, body.outputs, body.error)
+    return ReportResponse(run_id=outcome.run_id, state=outcome.state, trust=outcome.trust)  # type: ignore[arg-type]
+
+
+@router.post(
+    "/import",
+    response_model=ImportResponse,
+    responses=problem_responses(401, 403, 404, 413, 422, 503),
+)
+def import_runs(
+    body: ImportRequest, meta: AuthorizedCalibration, service: ServiceDep
+) -> ImportResponse:
+    """Add runs evaluated elsewhere as finished design points, all or nothing."""
+    runs = [run.model_dump() for run in body.runs]
+    return ImportResponse(imported=service.import_runs(meta, runs))
+
+
+@router.get(
+    "",
+    response_model=RunsResponse,
+    responses={200: {"content": _CSV}, **problem_responses(401, 403, 404, 422, 503)},
+)
+def list_runs(
+    meta: AuthorizedCalibration,
+    service: ServiceDep,
+    state: Annotated[Literal["leased", "done", "failed", "expired"] | None, Query()] = None,
+    format: Annotated[Literal["json", "csv"], Query()] = "json",
+) -> RunsResponse | Response:
+    """Every run with parameters, outputs, state and trust; ``?format=csv`` for CSV."""
+    runs = service.runs(meta, state)
+    if format == "json":
+        return RunsResponse(runs=runs)  # type: ignore[arg-type]
+    spec = service.spec(meta)
+    outputs = [f"{o.name}[{i}]" for o in spec.observations for i in range(o.size)]
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    fixed = ["run_id", "state", "worker", "leased_at", "completed_at", "trust", "error"]
+    writer.writerow([*fixed, *spec.names, *outputs])
+    for run in runs:
+        values = [run[k] for k in fixed]
+        flat: list[object] = [""] * len(outputs)
+        if run["outputs"] is not None:
+            flat = [v for o in spec.observations for v in run["outputs"][o.name]]
+        writer.writerow(
+            ["" if v is None else v for v in values]
+            + [repr(run["parameters"][n]) for n in spec.names]
+            + [repr(v) if isinstance(v, float) else v for v in flat]
+        )
+    return Response(buffer.getvalue(), media_type="text/csv")

@@ -1,0 +1,417 @@
+"""The service layer: every calibration operation, orchestrating the engine and the store.
+
+Nothing here knows about HTTP. Request handlers call one method each; the refit worker uses
+`run_table` and `proposal_points` to turn stored runs into engine input and engine output into
+stored points. Engine states are cached per calibration by version, specs by id (both never
+change under a given key).
+"""
+
+from __future__ import annotations
+
+import base64
+import json
+import re
+import secrets
+import threading
+import time
+from collections import OrderedDict
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from typing import Any
+
+import numpy as np
+from honing.api.auth import check_token, hash_token, new_token
+from honing.api.errors import NotFound
+from honing.api.metrics import Metrics
+from honing.api.store import CalibrationMeta, NewCalibration, RunRecord, Store
+from honing.engine.errors import ConflictError, SpecError
+from honing.engine.rounds import posterior_samples, refit_due, start, trust_index
+from honing.engine.spec import CalibrationSpec
+from honing.engine.state import EngineState, RunTable, state_from_bytes, state_to_bytes
+
+__all__ = [
+    "CalibrationService",
+    "LeaseOutcome",
+    "proposal_points",
+    "rfc3339",
+    "run_table",
+]
+
+#: Seconds a client should wait before asking again for work that is not there yet.
+RETRY_AFTER_SECONDS = 2
+#: Engine statuses after which no more work is handed out.
+FINAL_STATUSES = frozenset({"converged", "budget_exhausted", "failed"})
+_CACHE_SIZE = 128
+# Ids become parts of store keys: anything else cannot name a calibration or run.
+_CALIBRATION_ID = re.compile(r"[A-Za-z0-9_-]{1,64}")
+_RUN_ID = re.compile(r"r[0-9]{1,15}")
+#: A report re-reads a run that changed under it (expired or finished meanwhile) this often.
+_REPORT_ATTEMPTS = 5
+
+
+def rfc3339(timestamp: float | None) -> str | None:
+    """Unix seconds as an RFC 3339 UTC string with milliseconds."""
+    if timestamp is None:
+        return None
+    text = datetime.fromtimestamp(timestamp, UTC).isoformat(timespec="milliseconds")
+    return text.replace("+00:00", "Z")
+
+
+def _encode_prediction(row: np.ndarray) -> str:
+    return base64.b64encode(np.ascontiguousarray(row, dtype="<f4").tobytes()).decode()
+
+
+def _decode_prediction(text: str | None) -> np.ndarray | None:
+    if not text:
+        return None
+    return np.frombuffer(base64.b64decode(text), dtype="<f4").astype(float)
+
+
+def proposal_points(spec: CalibrationSpec, state: EngineState) -> list[str]:
+    """The state's proposals as point JSON: parameters, whitened prediction (base64 float32)
+    and the round that proposed them."""
+    points = []
+    for i, theta in enumerate(state.proposals):
+        prediction = (
+            _encode_prediction(state.predictions[i]) if i < len(state.predictions) else None
+        )
+        points.append(
+            json.dumps(
+                {
+                    "parameters": spec.parameters_dict(theta),
+                    "prediction": prediction,
+                    "round": state.round,
+                }
+            )
+        )
+    return points
+
+
+def _flat_outputs(spec: CalibrationSpec, outputs: Mapping[str, list[float]]) -> np.ndarray:
+    return np.concatenate([np.asarray(outputs[o.name], dtype=float) for o in spec.observations])
+
+
+def run_table(spec: CalibrationSpec, records: Sequence[RunRecord]) -> RunTable:
+    """Engine input from finished runs in completion order (failed rows are NaN)."""
+    n = len(records)
+    if n == 0:
+        return RunTable.empty(spec.dim, spec.output_size)
+    theta = np.array([[r.point["parameters"][name] for name in spec.names] for r in records])
+    outputs = np.full((n, spec.output_size), np.nan)
+    failed = np.zeros(n, dtype=bool)
+    trust = np.ones(n)
+    for i, r in enumerate(records):
+        result = r.result or {}
+        if r.state == "failed" or result.get("outputs") is None:
+            failed[i] = True
+            continue
+        outputs[i] = _flat_outputs(spec, result["outputs"])
+        trust[i] = float(result.get("trust") or 1.0)
+    return RunTable(theta, outputs, failed, trust)
+
+
+@dataclass(frozen=True)
+class LeaseOutcome:
+    """Leased runs as API dicts, the calibration status, and a retry hint when empty."""
+
+    runs: list[dict[str, Any]]
+    status: str
+    retry_after: int | None
+
+
+@dataclass(frozen=True)
+class ReportOutcome:
+    """The run's state and trust after a report."""
+
+    run_id: str
+    state: str
+    trust: float | None
+
+
+class CalibrationService:
+    """Calibration operations on one store."""
+
+    def __init__(
+        self,
+        store: Store,
+        metrics: Metrics | None = None,
+        clock: Callable[[], float] = time.time,
+    ) -> None:
+        self.store = store
+        self.metrics = metrics
+        self.clock = clock
+        self._lock = threading.Lock()
+        self._specs: OrderedDict[str, CalibrationSpec] = OrderedDict()
+        self._states: OrderedDict[str, tuple[int, EngineState]] = OrderedDict()
+
+    # caches
+
+    def spec(self, meta: CalibrationMeta) -> CalibrationSpec:
+        """The parsed spec of a calibration (cached)."""
+        with self._lock:
+            spec = self._specs.get(meta.id)
+            if spec is not None:
+                self._specs.move_to_end(meta.id)
+                return spec
+        spec = CalibrationSpec.from_dict(json.loads(meta.spec_json))
+        with self._lock:
+            self._specs[meta.id] = spec
+            while len(self._specs) > _CACHE_SIZE:
+                self._specs.popitem(last=False)
+        return spec
+
+    def state(self, meta: CalibrationMeta) -> EngineState:
+        """The calibration's current engine state (cached by version)."""
+        with self._lock:
+            cached = self._states.get(meta.id)
+            if cached is not None and cached[0] == meta.state_version:
+                self._states.move_to_end(meta.id)
+                return cached[1]
+        loaded = self.store.load_state(meta.id)
+        if loaded is None:
+            raise NotFound(f"calibration {meta.id!r} does not exist")
+        version, blob = loaded
+        state = state_from_bytes(blob)
+        with self._lock:
+            self._states[meta.id] = (version, state)
+            while len(self._states) > _CACHE_SIZE:
+                self._states.popitem(last=False)
+        return state
+
+    def _forget(self, calibration_id: str) -> None:
+        with self._lock:
+            self._specs.pop(calibration_id, None)
+            self._states.pop(calibration_id, None)
+
+    def _count(self, state: str, n: int = 1) -> None:
+        if self.metrics is not None and n:
+            self.metrics.runs.labels(state=state).inc(n)
+
+    # access
+
+    def meta(self, calibration_id: str) -> CalibrationMeta:
+        """Metadata of an existing calibration; `NotFound` otherwise."""
+        meta = None
+        if _CALIBRATION_ID.fullmatch(calibration_id):
+            meta = self.store.get_meta(calibration_id)
+        if meta is None:
+            raise NotFound(f"calibration {calibration_id!r} does not exist")
+        return meta
+
+    def authorize(self, calibration_id: str, token: str | None) -> CalibrationMeta:
+        """Check existence first (404 whatever the token), then the calibration token."""
+        meta = self.meta(calibration_id)
+        check_token(token, meta.token_hash)
+        return meta
+
+    def status(self, meta: CalibrationMeta) -> str:
+        """collecting, fitting, converged, budget_exhausted or failed."""
+        if meta.failed_error:
+            return "failed"
+        if meta.engine_status != "collecting":
+            return meta.engine_status
+        if self.store.refit_pending(meta.id):
+            return "fitting"
+        return "collecting"
+
+    # calibrations
+
+    def create(self, data: Mapping[str, Any]) -> tuple[str, str, str]:
+        """Validate a spec, open round 0 and store it; returns (id, token, status)."""
+        spec = CalibrationSpec.from_dict(data)
+        state = start(spec)
+        calibration_id = secrets.token_hex(8)
+        token = new_token()
+        self.store.create(
+            NewCalibration(
+                id=calibration_id,
+                token_hash=hash_token(token),
+                spec_json=json.dumps(spec.to_dict(), allow_nan=False),
+                created_at=self.clock(),
+                state_blob=state_to_bytes(state),
+                round=state.round,
+                engine_status=state.status,
+                proposals=proposal_points(spec, state),
+            )
+        )
+        return calibration_id, token, state.status
+
+    def describe(self, meta: CalibrationMeta) -> dict[str, Any]:
+        """Spec, status, counts and round of a calibration."""
+        return {
+            "id": meta.id,
+            "name": self.spec(meta).name,
+            "status": self.status(meta),
+            "round": meta.round,
+            "runs_completed": meta.done,
+            "runs_failed": meta.failed,
+            "runs_leased": meta.leased,
+            "runs_queued": meta.queued,
+            "created_at": rfc3339(meta.created_at),
+            "error": meta.failed_error,
+            "spec": json.loads(meta.spec_json),
+        }
+
+    def delete(self, calibration_id: str) -> None:
+        """Remove a calibration and all its runs."""
+        if not self.store.delete(calibration_id):
+            raise NotFound(f"calibration {calibration_id!r} does not exist")
+        self._forget(calibration_id)
+
+    # runs
+
+    def lease(
+        self, meta: CalibrationMeta, count: int, worker: str, lease_seconds: float
+    ) -> LeaseOutcome:
+        """Hand out up to ``count`` points; never blocks on a refit."""
+        status = self.status(meta)
+        if status in FINAL_STATUSES:
+            return LeaseOutcome([], status, None)
+        spec = self.spec(meta)
+        result = self.store.lease(
+            meta.id, count, worker, self.clock(), lease_seconds, spec.max_runs
+        )
+        self._count("expired", result.expired)
+        self._count("leased", len(result.runs))
+        runs = [
+            {
+                "run_id": r.run_id,
+                "parameters": r.point["parameters"],
+                "lease_expires_at": rfc3339(r.lease_expires_at),
+            }
+            for r in result.runs
+        ]
+        return LeaseOutcome(runs, status, None if runs else RETRY_AFTER_SECONDS)
+
+    def report(
+        self,
+        meta: CalibrationMeta,
+        run_id: str,
+        outputs: Mapping[str, Any] | None,
+        error: str | None,
+    ) -> ReportOutcome:
+        """Record one result: validated, trust computed, fenced by the run's epoch."""
+        spec = self.spec(meta)
+        flat = spec.flatten_outputs(outputs) if outputs is not None else None
+        normalised = spec.split_outputs(flat) if flat is not None else None
+        new_state = "failed" if flat is None else "done"
+        for _ in range(_REPORT_ATTEMPTS):
+            record = self.store.get_run(meta.id, run_id) if _RUN_ID.fullmatch(run_id) else None
+            if record is None:
+                raise NotFound(f"run {run_id!r} does not exist in calibration {meta.id!r}")
+            if record.state in ("done", "failed"):
+                previous = record.result or {}
+                same = record.state == new_state and (
+                    previous.get("outputs") == normalised
+                    if flat is not None
+                    else previous.get("error") == error
+                )
+                if not same:
+                    raise ConflictError(
+                        f"run {run_id!r} already has a different result ({record.state})"
+                    )
+                return ReportOutcome(run_id, record.state, previous.get("trust"))
+            trust = None
+            if flat is not None:
+                predicted = _decode_prediction(record.point.get("prediction"))
+                trust = float(trust_index(spec, predicted, flat))
+            result = {"outputs": normalised, "error": error, "trust": trust}
+            if self.store.finish_run(
+                meta.id,
+                run_id,
+                record.epoch,
+                new_state,
+                json.dumps(result, allow_nan=False),
+                self.clock(),
+            ):
+                self._count(new_state)
+                self.schedule_refit(meta.id)
+                return ReportOutcome(run_id, new_state, trust)
+        raise ConflictError(f"run {run_id!r} kept changing while its result was written")
+
+    def import_runs(self, meta: CalibrationMeta, runs: Sequence[Mapping[str, Any]]) -> int:
+        """Add runs evaluated elsewhere, all or nothing, as done with trust 1."""
+        spec = self.spec(meta)
+        errors: list[tuple[list[str | int], str]] = []
+        items: list[tuple[str, str]] = []
+        for i, run in enumerate(runs):
+            try:
+                theta = spec.theta_from_dict(run.get("parameters"), ("runs", i, "parameters"))
+                flat = spec.flatten_outputs(run.get("outputs"))
+            except SpecError as exc:
+                for e in exc.errors:
+                    loc = list(e["loc"])  # type: ignore[call-overload]
+                    if loc[:2] != ["runs", i]:
+                        loc = ["runs", i, *loc]
+                    errors.append((loc, str(e["msg"])))
+                continue
+            point = {"parameters": spec.parameters_dict(theta), "prediction": None, "round": -1}
+            result = {"outputs": spec.split_outputs(flat), "error": None, "trust": 1.0}
+            items.append((json.dumps(point), json.dumps(result, allow_nan=False)))
+        if errors:
+            raise SpecError(errors)
+        if not items:
+            return 0
+        ids = self.store.import_runs(meta.id, items, self.clock())
+        if not ids:
+            raise NotFound(f"calibration {meta.id!r} does not exist")
+        self._count("imported", len(ids))
+        self.schedule_refit(meta.id)
+        return len(ids)
+
+    def schedule_refit(self, calibration_id: str) -> bool:
+        """Queue a refit when the results since the last fit call for one."""
+        meta = self.store.get_meta(calibration_id)
+        if meta is None or meta.failed_error:
+            return False
+        state = self.state(meta)
+        if refit_due(self.spec(meta), state, meta.done + meta.failed, meta.leased, meta.queued):
+            self.store.enqueue_refit(calibration_id, self.clock())
+            return True
+        return False
+
+    def runs(self, meta: CalibrationMeta, state: str | None = None) -> list[dict[str, Any]]:
+        """Every run (optionally in one state) as API dicts, in creation order."""
+        return [self.run_view(r) for r in self.store.list_runs(meta.id, state)]
+
+    @staticmethod
+    def run_view(record: RunRecord) -> dict[str, Any]:
+        """One run as the API shows it."""
+        result = record.result or {}
+        return {
+            "run_id": record.run_id,
+            "parameters": record.point["parameters"],
+            "state": record.state,
+            "outputs": result.get("outputs"),
+            "error": result.get("error"),
+            "trust": result.get("trust"),
+            "worker": record.worker,
+            "leased_at": rfc3339(record.leased_at),
+            "lease_expires_at": rfc3339(record.lease_expires_at),
+            "completed_at": rfc3339(record.completed_at),
+            "imported": record.imported,
+        }
+
+    # posterior
+
+    def posterior(self, meta: CalibrationMeta) -> dict[str, Any]:
+        """The latest posterior summary with live status and counts."""
+        state = self.state(meta)
+        summary = dict(state.summary)
+        summary["round"] = state.round
+        summary["status"] = self.status(meta)
+        summary["runs_completed"] = meta.done
+        summary["runs_failed"] = meta.failed
+        return summary
+
+    def samples(self, meta: CalibrationMeta, count: int) -> tuple[list[str], np.ndarray]:
+        """Up to ``count`` posterior draws with their column names."""
+        names, draws = posterior_samples(self.spec(meta), self.state(meta), count)
+        return list(names), np.asarray(draws, dtype=float)
+
+    def report_inputs(
+        self, meta: CalibrationMeta
+    ) -> tuple[CalibrationSpec, EngineState, list[dict[str, Any]]]:
+        """What the HTML report needs: spec, state and runs."""
+        return self.spec(meta), self.state(meta), self.runs(meta)

@@ -1,10 +1,13 @@
-"""Fixtures of the API tests: a store of each backend."""
+"""Fixtures of the API tests: stores of each backend, the app, a small calibration."""
 
 from __future__ import annotations
 
 from collections.abc import Iterator
 
 import pytest
+from helpers_api import AppClient, Calibration, FakeClock, create, make_client
+from honing.api.refitter import Refitter
+from honing.api.settings import Settings
 from honing.api.store import Store, open_store
 
 
@@ -20,3 +23,31 @@ def store(store_url: str) -> Iterator[Store]:
     opened = open_store(store_url)
     yield opened
     opened.close()
+
+
+@pytest.fixture
+def settings(store_url: str) -> Settings:
+    return Settings(store_url=store_url, admin_key=None)
+
+
+@pytest.fixture
+def client(settings: Settings) -> Iterator[AppClient]:
+    with make_client(settings) as c:
+        yield c
+
+
+@pytest.fixture
+def clock(client: AppClient) -> FakeClock:
+    fake = FakeClock()
+    client.app.state.service.clock = fake  # type: ignore[attr-defined]
+    return fake
+
+
+@pytest.fixture
+def calibration(client: AppClient) -> Calibration:
+    return create(client)
+
+
+@pytest.fixture
+def refitter(client: AppClient) -> Refitter:
+    return Refitter(client.app.state.store)  # type: ignore[attr-defined]

@@ -1,0 +1,132 @@
+"""Ways to run the service: a uvicorn server with refit worker processes, a standalone refit
+worker, and an embedded server in background threads (for ``honing demo`` and tests)."""
+
+from __future__ import annotations
+
+import logging
+import multiprocessing
+import signal
+import socket
+import threading
+import time
+from collections.abc import Callable
+from pathlib import Path
+from types import FrameType
+
+import uvicorn
+from honing.api.app import create_app
+from honing.api.logs import configure_logging
+from honing.api.refitter import Refitter
+from honing.api.settings import Settings
+from honing.api.store import open_store
+
+__all__ = ["run_refitter", "run_server", "start_background_server"]
+
+log = logging.getLogger("honing.api.server")
+
+#: Seconds to wait for an embedded server to start listening.
+START_TIMEOUT = 30.0
+
+
+def run_refitter(store_url: str, log_level: str = "info") -> None:
+    """Run refit jobs of the store until SIGTERM or SIGINT (a standalone worker process)."""
+    configure_logging(log_level)
+    stop = threading.Event()
+
+    def on_signal(signum: int, frame: FrameType | None) -> None:
+        stop.set()
+
+    signal.signal(signal.SIGTERM, on_signal)
+    signal.signal(signal.SIGINT, on_signal)
+    store = open_store(store_url)
+    log.info("refit worker started", extra={"store": store.kind})
+    try:
+        Refitter(store).run_forever(stop)
+    finally:
+        store.close()
+
+
+def run_server(
+    host: str,
+    port: int,
+    store_url: str,
+    admin_key_file: str | Path | None = None,
+    refit_workers: int = 1,
+) -> None:
+    """Serve the API with uvicorn in this process and ``refit_workers`` refit processes."""
+    settings = Settings(
+        store_url=store_url,
+        admin_key_file=Path(admin_key_file) if admin_key_file else None,
+        refit_workers=refit_workers,
+    )
+    configure_logging(settings.log_level)
+    app = create_app(settings)
+    context = multiprocessing.get_context("spawn")
+    workers = [
+        context.Process(
+            target=run_refitter,
+            args=(store_url, settings.log_level),
+            name=f"honing-refitter-{i}",
+        )
+        for i in range(refit_workers)
+    ]
+    for worker in workers:
+        worker.start()
+    try:
+        uvicorn.run(app, host=host, port=port, log_config=None, access_log=False)
+    finally:
+        for worker in workers:
+            worker.terminate()
+        for worker in workers:
+            worker.join(timeout=30)
+            if worker.is_alive():
+                worker.kill()
+
+
+def start_background_server(
+    store_url: str, host: str = "127.0.0.1", port: int = 0
+) -> tuple[str, Callable[[], None]]:
+    """Start the API and one refit worker in threads of this process.
+
+    Returns the base URL (the port is chosen when ``port`` is 0) and a function that stops
+    both and closes the store.
+    """
+    settings = Settings(store_url=store_url)
+    app = create_app(settings)
+    sock = socket.socket(socket.AF_INET6 if ":" in host else socket.AF_INET)
+    sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+    sock.bind((host, port))
+    bound = sock.getsockname()[1]
+    server = uvicorn.Server(uvicorn.Config(app, log_config=None, access_log=False, lifespan="on"))
+    serving = threading.Thread(
+        target=server.run, kwargs={"sockets": [sock]}, name="honing-api", daemon=True
+    )
+    serving.start()
+    deadline = time.monotonic() + START_TIMEOUT
+    while not server.started:
+        if not serving.is_alive() or time.monotonic() > deadline:
+            sock.close()
+            raise RuntimeError(f"the embedded server did not start on {host}:{bound}")
+        time.sleep(0.01)
+    refit_store = open_store(store_url)
+    refitter = Refitter(refit_store, app.state.metrics)
+    stop_refits = threading.Event()
+    refitting = threading.Thread(
+        target=refitter.run_forever,
+        args=(stop_refits,),
+        kwargs={"poll": 0.2},
+        name="honing-refitter",
+        daemon=True,
+    )
+    refitting.start()
+
+    def stop() -> None:
+        server.should_exit = True
+        serving.join(timeout=30)
+        stop_refits.set()
+        refitting.join(timeout=60)
+        refit_store.close()
+        sock.close()
+
+    netloc = f"[{host}]" if ":" in host else host
+    return f"http://{netloc}:{bound}", stop

@@ -1,0 +1,197 @@
+import csv
+import io
+
+from helpers_api import SPEC, AppClient, Calibration, create, lease, report, simulate
+from honing.api.refitter import Refitter
+
+
+def test_create_answers_id_token_status(client: AppClient) -> None:
+    response = client.post("/v1/calibrations", json=SPEC)
+    assert response.status_code == 201
+    body = response.json()
+    assert set(body) == {"id", "token", "status"} and body["status"] == "collecting"
+
+
+def test_describe_has_spec_status_counts_round(client: AppClient, calibration: Calibration) -> None:
+    body = client.get(calibration.url, headers=calibration.headers).json()
+    assert body["status"] == "collecting" and body["round"] == 0
+    assert (body["runs_completed"], body["runs_failed"], body["runs_leased"]) == (0, 0, 0)
+    assert body["spec"]["design"] == {"initial_runs": 8, "batch_size": 4}
+    assert body["spec"]["parameters"][1]["unit"] == "m"
+
+
+def test_full_loop_to_convergence_or_budget(
+    client: AppClient, calibration: Calibration, refitter: Refitter
+) -> None:
+    prior = client.get(f"{calibration.url}/posterior", headers=calibration.headers).json()
+    assert prior["round"] == 0 and prior["status"] == "collecting"
+    assert list(prior["parameters"]) == ["slope", "offset"]
+    rounds = []
+    for _ in range(12):
+        runs = lease(client, calibration, 100)
+        for run in runs:
+            assert report(client, calibration, run)["state"] == "done"
+        status = client.get(calibration.url, headers=calibration.headers).json()["status"]
+        if status in ("converged", "budget_exhausted"):
+            break
+        # Every batch's worth of results queues a refit, and leasing stays open meanwhile.
+        assert status == "fitting"
+        assert refitter.step() == ["written"]
+        posterior = client.get(f"{calibration.url}/posterior", headers=calibration.headers)
+        rounds.append(posterior.json()["round"])
+    assert rounds == list(range(1, len(rounds) + 1)) and rounds
+    final = client.get(calibration.url, headers=calibration.headers).json()
+    assert final["status"] in ("converged", "budget_exhausted"), final
+    assert final["runs_completed"] <= SPEC["budget"]["max_runs"]
+    # A finished calibration hands out nothing and promises nothing more.
+    response = client.post(
+        f"{calibration.url}/runs", json={"count": 5}, headers=calibration.headers
+    )
+    assert response.json() == {"runs": [], "status": final["status"]}
+    assert "retry-after" not in response.headers
+    posterior = client.get(f"{calibration.url}/posterior", headers=calibration.headers).json()
+    slope = posterior["parameters"]["slope"]
+    # The data are exactly slope 0.9, offset 0.2; allow four posterior sd either way.
+    assert abs(slope["mean"] - 0.9) < 4 * slope["sd"], slope
+    assert set(posterior["diagnostics"]) >= {"trust_mean", "validation_error", "converged"}
+    assert set(posterior["predictive"]) == {"y", "z"}
+
+
+def test_report_stores_outputs_and_trust(client: AppClient, calibration: Calibration) -> None:
+    (run,) = lease(client, calibration, worker="w-7")
+    answer = report(client, calibration, run)
+    assert answer == {"run_id": run["run_id"], "state": "done", "trust": 1.0}
+    (stored,) = client.get(f"{calibration.url}/runs", headers=calibration.headers).json()["runs"]
+    assert stored["outputs"] == simulate(run["parameters"])
+    assert stored["parameters"] == run["parameters"] and stored["worker"] == "w-7"
+    assert stored["leased_at"].endswith("Z") and stored["completed_at"].endswith("Z")
+    assert stored["error"] is None and stored["state"] == "done"
+
+
+def test_failed_report_keeps_the_error(client: AppClient, calibration: Calibration) -> None:
+    (run,) = lease(client, calibration)
+    response = client.put(
+        f"{calibration.url}/runs/{run['run_id']}",
+        json={"error": "solver diverged"},
+        headers=calibration.headers,
+    )
+    assert response.json() == {"run_id": run["run_id"], "state": "failed", "trust": None}
+    info = client.get(calibration.url, headers=calibration.headers).json()
+    assert (info["runs_failed"], info["runs_completed"]) == (1, 0)
+    (failed,) = client.get(
+        f"{calibration.url}/runs?state=failed", headers=calibration.headers
+    ).json()["runs"]
+    assert failed["error"] == "solver diverged" and failed["outputs"] is None
+
+
+def test_runs_filter_and_csv(client: AppClient, calibration: Calibration) -> None:
+    runs = lease(client, calibration, 3)
+    report(client, calibration, runs[0])
+    listed = client.get(f"{calibration.url}/runs", headers=calibration.headers).json()["runs"]
+    assert [r["state"] for r in listed] == ["done", "leased", "leased"]
+    leased = client.get(f"{calibration.url}/runs?state=leased", headers=calibration.headers)
+    assert [r["run_id"] for r in leased.json()["runs"]] == [r["run_id"] for r in runs[1:]]
+    response = client.get(f"{calibration.url}/runs?format=csv", headers=calibration.headers)
+    assert response.headers["content-type"].startswith("text/csv")
+    rows = list(csv.DictReader(io.StringIO(response.text)))
+    assert [r["run_id"] for r in rows] == [r["run_id"] for r in runs]
+    assert float(rows[0]["slope"]) == runs[0]["parameters"]["slope"]
+    assert float(rows[0]["y[2]"]) == simulate(runs[0]["parameters"])["y"][2]
+    assert rows[1]["y[0]"] == "" and rows[1]["state"] == "leased"
+
+
+def test_samples_json_and_csv(client: AppClient, calibration: Calibration) -> None:
+    body = client.get(
+        f"{calibration.url}/posterior/samples?count=7", headers=calibration.headers
+    ).json()
+    assert body["names"] == ["slope", "offset"]
+    assert len(body["samples"]) == 7 and all(len(row) == 2 for row in body["samples"])
+    response = client.get(
+        f"{calibration.url}/posterior/samples?count=5&format=csv", headers=calibration.headers
+    )
+    lines = response.text.strip().splitlines()
+    assert lines[0] == "slope,offset" and len(lines) == 6
+    assert [float(v) for v in lines[1].split(",")] == body["samples"][0]
+
+
+def test_import_counts_as_completed(client: AppClient, calibration: Calibration) -> None:
+    archive = [
+        {
+            "parameters": {"slope": s, "offset": 0.1},
+            "outputs": simulate({"slope": s, "offset": 0.1}),
+        }
+        for s in (0.5, 1.0, 1.5)
+    ]
+    response = client.post(
+        f"{calibration.url}/runs/import", json={"runs": archive}, headers=calibration.headers
+    )
+    assert response.status_code == 200 and response.json() == {"imported": 3}
+    info = client.get(calibration.url, headers=calibration.headers).json()
+    assert info["runs_completed"] == 3
+    runs = client.get(f"{calibration.url}/runs", headers=calibration.headers).json()["runs"]
+    assert [r["trust"] for r in runs] == [1.0, 1.0, 1.0]
+    assert all(r["state"] == "done" and r["imported"] for r in runs)
+
+
+def test_import_enough_runs_queues_a_refit(
+    client: AppClient, calibration: Calibration, refitter: Refitter
+) -> None:
+    archive = [
+        {"parameters": p, "outputs": simulate(p)}
+        for p in ({"slope": 0.1 * i, "offset": 0.05 * i - 0.3} for i in range(1, 13))
+    ]
+    client.post(
+        f"{calibration.url}/runs/import", json={"runs": archive}, headers=calibration.headers
+    )
+    assert client.get(calibration.url, headers=calibration.headers).json()["status"] == "fitting"
+    assert refitter.step() == ["written"]
+    assert (
+        client.get(f"{calibration.url}/posterior", headers=calibration.headers).json()["round"] == 1
+    )
+
+
+def test_delete_removes_everything(client: AppClient, calibration: Calibration) -> None:
+    other = create(client)
+    (run,) = lease(client, calibration)
+    report(client, calibration, run)
+    response = client.delete(calibration.url, headers=calibration.headers)
+    assert response.status_code == 204 and response.content == b""
+    assert client.get(calibration.url, headers=calibration.headers).status_code == 404
+    assert client.delete(calibration.url, headers=calibration.headers).status_code == 404
+    assert client.get(other.url, headers=other.headers).status_code == 200
+    store = client.app.state.store  # type: ignore[attr-defined]
+    assert store.list_runs(calibration.id) == [] and store.get_meta(calibration.id) is None
+
+
+def test_delete_leaves_no_redis_key(redis_url: str) -> None:
+    import redis
+    from helpers_api import make_client
+    from honing.api.settings import Settings
+
+    with make_client(Settings(store_url=redis_url)) as client:
+        cal = create(client)
+        keep = create(client)
+        for run in lease(client, cal, 3):
+            report(client, cal, run)
+        lease(client, cal, 2)
+        client.delete(cal.url, headers=cal.headers)
+    r = redis.Redis.from_url(redis_url)
+    keys = [k.decode() for k in r.keys("*")]
+    r.close()
+    assert keys and not [k for k in keys if cal.id in k]
+    assert all(f"{{{keep.id}}}" in k for k in keys)
+
+
+def test_health_and_metrics(client: AppClient, settings) -> None:  # type: ignore[no-untyped-def]
+    kind = "redis" if settings.store_url.startswith("redis") else "sqlite"
+    assert client.get("/healthz").json() == {"status": "ok", "store": kind}
+    cal = create(client)
+    report(client, cal, lease(client, cal)[0])
+    text = client.get("/metrics").text
+    assert (
+        'honing_http_requests_total{method="POST",route="/v1/calibrations",status="201"} 1.0'
+        in text
+    )
+    assert 'honing_runs_total{state="done"} 1.0' in text
+    assert "honing_refit_queue_depth 0.0" in text
+    assert "honing_http_request_duration_seconds_bucket" in text

@@ -26,13 +26,12 @@ from datetime import UTC, datetime
 from typing import Any
 
 import numpy as np
+from honing.engine.spec import CalibrationSpec, Observation
+from honing.engine.state import EngineState
 from matplotlib.axes import Axes
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullFormatter
-
-from honing.engine.spec import CalibrationSpec, Observation
-from honing.engine.state import EngineState
 
 __all__ = ["render_report"]
 
@@ -576,6 +575,8 @@ def _convergence_section(history: Sequence[Mapping[str, Any]]) -> str:
         ax.set_xlabel("round")
         if not pairs:
             ax.text(0.5, 0.5, "not recorded", ha="center", va="center", transform=ax.transAxes)
+            ax.set_xticks([])
+            ax.set_yticks([])
             continue
         xs, ys = zip(*pairs, strict=True)
         ax.plot(xs, ys, "o-", color=_POSTERIOR, ms=4)

@@ -1,0 +1,219 @@
+import json
+from datetime import datetime
+
+from helpers_api import SPEC, AppClient, Calibration, FakeClock, create, lease, report, simulate
+from honing.api.refitter import Refitter
+from test_api_auth import assert_problem
+
+
+def test_lease_expires_and_its_point_is_handed_out_again(
+    client: AppClient, calibration: Calibration, clock: FakeClock
+) -> None:
+    (old,) = lease(client, calibration, lease_seconds=60)
+    expires = datetime.fromisoformat(old["lease_expires_at"]).timestamp()
+    assert abs(expires - (clock.now + 60)) < 0.01
+    clock.now += 59
+    (fresh,) = lease(client, calibration)
+    assert fresh["parameters"] != old["parameters"]
+    clock.now += 2
+    (again,) = lease(client, calibration)
+    assert again["parameters"] == old["parameters"] and again["run_id"] != old["run_id"]
+    states = {
+        r["run_id"]: r["state"]
+        for r in client.get(f"{calibration.url}/runs", headers=calibration.headers).json()["runs"]
+    }
+    assert states == {
+        old["run_id"]: "expired",
+        fresh["run_id"]: "leased",
+        again["run_id"]: "leased",
+    }
+
+
+def test_late_result_of_an_expired_run_is_kept_and_both_count(
+    client: AppClient, calibration: Calibration, clock: FakeClock
+) -> None:
+    (old,) = lease(client, calibration, lease_seconds=10)
+    clock.now += 11
+    (again,) = lease(client, calibration)
+    assert report(client, calibration, old)["state"] == "done"
+    assert report(client, calibration, again)["state"] == "done"
+    info = client.get(calibration.url, headers=calibration.headers).json()
+    assert (info["runs_completed"], info["runs_leased"]) == (2, 0)
+
+
+def test_report_after_expiry_without_a_new_lease_is_accepted(
+    client: AppClient, calibration: Calibration, clock: FakeClock
+) -> None:
+    (run,) = lease(client, calibration, lease_seconds=5)
+    clock.now += 6
+    assert report(client, calibration, run)["state"] == "done"
+    # The point was re-queued when the lease expired; it is still handed out again.
+    (again,) = lease(client, calibration)
+    assert again["parameters"] == run["parameters"]
+
+
+def test_empty_lease_says_when_to_come_back(client: AppClient, calibration: Calibration) -> None:
+    handed = lease(client, calibration, 1000)
+    # Round 0 proposes the initial design plus one batch of spares.
+    assert len(handed) == SPEC["design"]["initial_runs"] + SPEC["design"]["batch_size"]
+    response = client.post(
+        f"{calibration.url}/runs", json={"count": 3}, headers=calibration.headers
+    )
+    assert response.json() == {"runs": [], "status": "collecting"}
+    assert int(response.headers["retry-after"]) >= 1
+
+
+def test_never_beyond_the_budget(client: AppClient) -> None:
+    cal = create(client, {**SPEC, "budget": {"max_runs": 5}})
+    runs = lease(client, cal, 100)
+    assert len(runs) == 5
+    report(client, cal, runs[0])
+    assert lease(client, cal, 100) == []
+    info = client.get(cal.url, headers=cal.headers).json()
+    assert info["runs_completed"] + info["runs_failed"] + info["runs_leased"] == 5
+
+
+def test_expired_runs_free_budget_for_their_points(client: AppClient, clock: FakeClock) -> None:
+    cal = create(client, {**SPEC, "budget": {"max_runs": 2}})
+    first = lease(client, cal, 5, lease_seconds=10)
+    assert len(first) == 2
+    clock.now += 11
+    second = lease(client, cal, 5)
+    assert [r["parameters"] for r in second] == [r["parameters"] for r in first]
+
+
+def test_leasing_goes_on_while_a_refit_runs(
+    client: AppClient, calibration: Calibration, refitter: Refitter
+) -> None:
+    runs = lease(client, calibration, SPEC["design"]["initial_runs"])
+    for run in runs:
+        report(client, calibration, run)
+    store = client.app.state.store  # type: ignore[attr-defined]
+    assert store.acquire_refit_lock(calibration.id, "someone-fitting", 60.0)
+    response = client.post(
+        f"{calibration.url}/runs", json={"count": 2}, headers=calibration.headers
+    )
+    assert response.json()["status"] == "fitting" and len(response.json()["runs"]) == 2
+    assert refitter.step() == ["locked"]
+    store.release_refit_lock(calibration.id, "someone-fitting")
+    assert refitter.step() == ["written"]
+    # The spares of round 0 that were leased meanwhile still take results.
+    for run in response.json()["runs"]:
+        assert report(client, calibration, run)["state"] == "done"
+
+
+def test_trust_uses_the_prediction_stored_at_lease_time(
+    client: AppClient, calibration: Calibration, refitter: Refitter
+) -> None:
+    for run in lease(client, calibration, SPEC["design"]["initial_runs"]):
+        report(client, calibration, run)
+    refitter.step()
+    lease(client, calibration, SPEC["design"]["batch_size"])  # the round-0 spares
+    (run,) = lease(client, calibration)
+    good = report(client, calibration, run)["trust"]
+    (other,) = lease(client, calibration)
+    bad_outputs = {k: [v + 50.0 for v in vs] for k, vs in simulate(other["parameters"]).items()}
+    response = client.put(
+        f"{calibration.url}/runs/{other['run_id']}",
+        json={"outputs": bad_outputs},
+        headers=calibration.headers,
+    )
+    assert 0.0 < response.json()["trust"] < good <= 1.0
+    stored = client.app.state.store.get_run(calibration.id, other["run_id"])  # type: ignore[attr-defined]
+    assert stored.point["prediction"] is not None and stored.point["round"] == 1
+
+
+def test_a_refit_that_keeps_failing_marks_the_calibration_failed(
+    client: AppClient, calibration: Calibration, monkeypatch
+) -> None:  # type: ignore[no-untyped-def]
+    def broken(*args, **kwargs):  # type: ignore[no-untyped-def]
+        raise FloatingPointError("singular system")
+
+    monkeypatch.setattr("honing.api.refitter.refit", broken)
+    refitter = Refitter(client.app.state.store, max_failures=2, retry_delay=0.0)  # type: ignore[attr-defined]
+    for run in lease(client, calibration, SPEC["design"]["initial_runs"]):
+        report(client, calibration, run)
+    assert refitter.step() == ["retry"]
+    assert client.get(calibration.url, headers=calibration.headers).json()["status"] == "fitting"
+    assert refitter.step() == ["failed"]
+    info = client.get(calibration.url, headers=calibration.headers).json()
+    assert info["status"] == "failed" and "singular system" in info["error"]
+    response = client.post(
+        f"{calibration.url}/runs", json={"count": 1}, headers=calibration.headers
+    )
+    assert response.json() == {"runs": [], "status": "failed"}
+    assert refitter.step() == []
+
+
+def test_a_dead_workers_job_is_retried_after_its_lock_expires(
+    client: AppClient, calibration: Calibration, refitter: Refitter
+) -> None:
+    import time
+
+    for run in lease(client, calibration, SPEC["design"]["initial_runs"]):
+        report(client, calibration, run)
+    store = client.app.state.store  # type: ignore[attr-defined]
+    # A worker took the job and died: its lock stays until it expires.
+    assert store.acquire_refit_lock(calibration.id, "dead-worker", 0.3)
+    assert refitter.step() == ["locked"]
+    while store.refit_queue_depth() and refitter.step() == ["locked"]:
+        time.sleep(0.05)
+    assert (
+        client.get(f"{calibration.url}/posterior", headers=calibration.headers).json()["round"] == 1
+    )
+
+
+def test_a_stale_refit_never_overwrites_a_newer_state(
+    client: AppClient, calibration: Calibration, monkeypatch
+) -> None:  # type: ignore[no-untyped-def]
+    from honing.engine import rounds
+
+    store = client.app.state.store  # type: ignore[attr-defined]
+    for run in lease(client, calibration, SPEC["design"]["initial_runs"]):
+        report(client, calibration, run)
+
+    def racing(spec, state, runs):  # type: ignore[no-untyped-def]
+        new = rounds.refit(spec, state, runs)
+        # Another worker (whose lock had lapsed) writes its newer state first.
+        version, blob = store.load_state(calibration.id)
+        assert store.swap_state(calibration.id, version, blob, 7, "collecting", [])
+        written.append(blob)
+        return new
+
+    written: list[bytes] = []
+    monkeypatch.setattr("honing.api.refitter.refit", racing)
+    assert Refitter(store).step() == ["stale"]
+    assert store.load_state(calibration.id) == (2, written[0])
+    assert store.get_meta(calibration.id).round == 7
+
+
+def test_renewed_lock_keeps_a_slow_refit_exclusive(
+    client: AppClient, calibration: Calibration, monkeypatch
+) -> None:  # type: ignore[no-untyped-def]
+    from honing.engine import rounds
+
+    store = client.app.state.store  # type: ignore[attr-defined]
+    for run in lease(client, calibration, SPEC["design"]["initial_runs"]):
+        report(client, calibration, run)
+    seen = []
+
+    def slow(spec, state, runs):  # type: ignore[no-untyped-def]
+        import time
+
+        new = rounds.refit(spec, state, runs)
+        time.sleep(0.6)  # longer than the lock's ttl: only renewal keeps it
+        seen.append(store.acquire_refit_lock(calibration.id, "intruder", 5.0))
+        return new
+
+    monkeypatch.setattr("honing.api.refitter.refit", slow)
+    assert Refitter(store, lock_ttl=0.3).step() == ["written"]
+    assert seen == [False]
+
+
+def test_points_carry_json_only(client: AppClient, calibration: Calibration) -> None:
+    (run,) = lease(client, calibration)
+    stored = client.app.state.store.get_run(calibration.id, run["run_id"])  # type: ignore[attr-defined]
+    assert json.loads(json.dumps(stored.point)) == stored.point
+    assert_problem(
+        client.get(f"{calibration.url}/runs/{run['run_id']}", headers=calibration.headers), 405
+    )

@@ -321,7 +321,8 @@ def test_large_calibrations_say_what_is_left_out(monkeypatch: pytest.MonkeyPatch
     assert "left out: extra_5, extra_6, extra_7" in text
 
 
-def test_many_channels_are_capped() -> None:
+def test_many_channels_are_capped(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(report, "CHANNEL_MAX_PLOTS", 3)
     base = _spec(noise="fixed").to_dict()
     base["observations"] = [
         {"name": f"probe_{i}", "values": [1.0, 2.0], "sd": 0.1} for i in range(5)

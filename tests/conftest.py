@@ -144,3 +144,9 @@ def redis_factory(tmp_path: Path) -> Iterator[Callable[..., RedisServer]]:
 def sqlite_url(tmp_path: Path) -> str:
     """URL of a fresh SQLite file in the test's folder."""
     return f"sqlite:///{tmp_path / 'honing.db'}"
+
+
+@pytest.fixture
+def unused_port() -> Callable[[], int]:
+    """Pick a free loopback TCP port (call once per server)."""
+    return free_port

@@ -1,0 +1,173 @@
+import os
+import signal
+import subprocess
+import sys
+import threading
+import time
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from pathlib import Path
+
+import httpx
+import pytest
+from helpers_api import SPEC, simulate
+
+#: Bounded waits (not assertions on speed): how long a started server may take to answer.
+START_WAIT = 60.0
+
+
+@contextmanager
+def api_process(
+    store_url: str, port: int, log: Path, refit_workers: int = 1, env: dict | None = None
+) -> Iterator[subprocess.Popen[bytes]]:
+    """`run_server` in its own process group (uvicorn plus refit worker processes)."""
+    code = (
+        "from honing.api.server import run_server; "
+        f"run_server('127.0.0.1', {port}, {store_url!r}, refit_workers={refit_workers})"
+    )
+    with open(log, "ab") as out:
+        proc = subprocess.Popen(
+            [sys.executable, "-c", code],
+            stdout=out,
+            stderr=out,
+            env={**os.environ, **(env or {})},
+            start_new_session=True,
+        )
+    try:
+        deadline = time.monotonic() + START_WAIT
+        while True:
+            try:
+                if httpx.get(f"http://127.0.0.1:{port}/healthz", timeout=1).status_code == 200:
+                    break
+            except httpx.TransportError:
+                pass
+            if proc.poll() is not None or time.monotonic() > deadline:
+                raise RuntimeError(f"server did not start:\n{log.read_text()[-3000:]}")
+            time.sleep(0.1)
+        yield proc
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGTERM)
+            try:
+                proc.wait(timeout=30)
+            except subprocess.TimeoutExpired:
+                os.killpg(proc.pid, signal.SIGKILL)
+                proc.wait()
+
+
+def kill_group(proc: subprocess.Popen[bytes]) -> None:
+    """SIGKILL the server and its refit workers (its own process group)."""
+    os.killpg(proc.pid, signal.SIGKILL)
+    proc.wait()
+
+
+@pytest.fixture
+def server_url(store_url: str, unused_port: Callable[[], int], tmp_path: Path) -> Iterator[str]:
+    port = unused_port()
+    env = {"HONING_MAX_BODY_BYTES": "4096"}
+    with api_process(store_url, port, tmp_path / "server.log", env=env):
+        yield f"http://127.0.0.1:{port}"
+
+
+def test_real_server_loop_refit_worker_and_body_limit(server_url: str) -> None:
+    with httpx.Client(base_url=server_url, timeout=30) as http:
+        created = http.post("/v1/calibrations", json=SPEC).json()
+        headers = {"Authorization": f"Bearer {created['token']}"}
+        url = f"/v1/calibrations/{created['id']}"
+        runs = http.post(f"{url}/runs", json={"count": 8}, headers=headers).json()["runs"]
+        for run in runs:
+            body = {"outputs": simulate(run["parameters"])}
+            assert http.put(f"{url}/runs/{run['run_id']}", json=body, headers=headers).is_success
+        # The refit worker process picks the job up; wait (bounded) for round 1.
+        deadline = time.monotonic() + START_WAIT
+        while http.get(f"{url}/posterior", headers=headers).json()["round"] < 1:
+            assert time.monotonic() < deadline, "no refit happened"
+            time.sleep(0.2)
+        info = http.get(url, headers=headers).json()
+        assert info["round"] == 1 and info["status"] in ("collecting", "fitting", "converged")
+        assert http.get("/metrics").text.count("honing_http_requests_total{") >= 4
+
+        # The server was started with HONING_MAX_BODY_BYTES=4096.
+        json_headers = {**headers, "Content-Type": "application/json"}
+        body = b'{"count": 1' + b" " * (4096 - 12) + b"}"
+        assert len(body) == 4096
+        assert http.post(f"{url}/runs", content=body, headers=json_headers).status_code == 200
+        over = body[:-1] + b" }"
+        response = http.post(f"{url}/runs", content=over, headers=json_headers)
+        assert response.status_code == 413
+        assert response.headers["content-type"] == "application/problem+json"
+
+        def chunks(data: bytes) -> Iterator[bytes]:
+            for i in range(0, len(data), 512):
+                yield data[i : i + 512]
+
+        # An iterator body goes out chunked, without Content-Length.
+        response = http.post(f"{url}/runs", content=chunks(over), headers=json_headers)
+        assert response.status_code == 413 and response.json()["status"] == 413
+        assert http.post(f"{url}/runs", content=chunks(body), headers=json_headers).is_success
+
+
+def _report_until_stopped(
+    base: str, url: str, headers: dict, acked: dict, lock: threading.Lock, stop: threading.Event
+) -> None:
+    with httpx.Client(base_url=base, timeout=10) as http:
+        while not stop.is_set():
+            try:
+                runs = http.post(f"{url}/runs", json={"count": 2}, headers=headers).json()["runs"]
+                for run in runs:
+                    outputs = simulate(run["parameters"])
+                    response = http.put(
+                        f"{url}/runs/{run['run_id']}", json={"outputs": outputs}, headers=headers
+                    )
+                    if response.status_code == 200:
+                        with lock:
+                            acked[run["run_id"]] = outputs
+            except (httpx.TransportError, ValueError, KeyError):
+                return
+
+
+@pytest.mark.parametrize("backend", ["sqlite", "redis"])
+def test_kill_9_loses_no_acknowledged_result(
+    backend: str,
+    sqlite_url: str,
+    redis_factory,  # type: ignore[no-untyped-def]
+    unused_port: Callable[[], int],
+    tmp_path: Path,
+) -> None:
+    redis_server = redis_factory(appendonly=True) if backend == "redis" else None
+    store_url = redis_server.url if redis_server else sqlite_url
+    port = unused_port()
+    base = f"http://127.0.0.1:{port}"
+    spec = {**SPEC, "design": {"initial_runs": 400, "batch_size": 4}, "budget": {"max_runs": 400}}
+    acked: dict[str, dict] = {}
+    lock = threading.Lock()
+    stop = threading.Event()
+    with api_process(store_url, port, tmp_path / "server.log", refit_workers=0) as proc:
+        created = httpx.post(f"{base}/v1/calibrations", json=spec).json()
+        headers = {"Authorization": f"Bearer {created['token']}"}
+        url = f"/v1/calibrations/{created['id']}"
+        workers = [
+            threading.Thread(
+                target=_report_until_stopped, args=(base, url, headers, acked, lock, stop)
+            )
+            for _ in range(6)
+        ]
+        for w in workers:
+            w.start()
+        while len(acked) < 60 and any(w.is_alive() for w in workers):
+            time.sleep(0.02)
+        kill_group(proc)
+        if redis_server is not None:
+            # Redis dies too: appendfsync always must have put every acknowledged write on disk.
+            redis_server.stop(kill=True)
+            redis_server.start()
+        stop.set()
+        for w in workers:
+            w.join()
+    assert len(acked) >= 60
+    with api_process(store_url, port, tmp_path / "server.log", refit_workers=0):
+        runs = httpx.get(f"{base}{url}/runs", headers=headers).json()["runs"]
+    stored = {r["run_id"]: r for r in runs}
+    for run_id, outputs in acked.items():
+        assert stored[run_id]["state"] == "done", run_id
+        assert stored[run_id]["outputs"] == outputs

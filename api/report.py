@@ -498,14 +498,16 @@ def _channel_figure(
         _draw_band(ax, xs, prior_lo[order], prior_hi[order], _PRIOR, "prior-predictive 95%")
         uncovered = _number(prior_predictive.get("uncovered"))
         if uncovered is not None:
-            notes.append(f"{_fmt(uncovered)} data points lie outside the prior-predictive band.")
+            notes.append(
+                f"{_points(int(uncovered))} outside the prior-predictive band (of {obs.size})."
+            )
     elif prior_predictive:
         notes.append("The prior-predictive band does not match the data length; not drawn.")
     lo, hi = _band(predictive, obs.size, "lo95", "hi95")
     if lo is not None and hi is not None:
         _draw_band(ax, xs, lo[order], hi[order], _POSTERIOR, "posterior-predictive 95%")
         outside = int(np.sum((obs.values < lo) | (obs.values > hi)))
-        notes.append(f"{outside} of {obs.size} data points lie outside the posterior band.")
+        notes.append(f"{_points(outside)} outside the posterior band (of {obs.size}).")
     elif predictive:
         notes.append("The posterior-predictive band does not match the data length; not drawn.")
     (mean,) = _band(predictive, obs.size, "mean")
@@ -671,6 +673,10 @@ def _fmt(value: float | None) -> str:
     if value == int(value) and abs(value) < 1e9:
         return f"{int(value):,}"
     return f"{value:.4g}"
+
+
+def _points(n: int) -> str:
+    return f"{n:,} data point lies" if n == 1 else f"{n:,} data points lie"
 
 
 def _tex(text: str) -> str:

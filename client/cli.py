@@ -504,6 +504,7 @@ class ProgressLine:
         self._last: Progress | None = None
         self._written = 0.0
         self._key: tuple[Any, ...] | None = None
+        self._shown = ""
 
     def update(self, progress: Progress) -> None:
         """Show ``progress`` (throttled)."""
@@ -518,9 +519,7 @@ class ProgressLine:
         key = (progress.round, progress.status, progress.stopping)
         if key != self._key or now - self._written >= 30.0:
             self._key = key
-            self._written = now
-            self.stream.write(self._text(progress) + "\n")
-            self.stream.flush()
+            self._line(progress)
 
     def close(self) -> None:
         """Show the final state and end the line."""
@@ -529,8 +528,14 @@ class ProgressLine:
         if self.tty:
             self._draw(self._last)
             self.stream.write("\n")
-        else:
-            self.stream.write(self._text(self._last) + "\n")
+            self.stream.flush()
+        elif self._text(self._last) != self._shown:
+            self._line(self._last)
+
+    def _line(self, progress: Progress) -> None:
+        self._written = time.monotonic()
+        self._shown = self._text(progress)
+        self.stream.write(self._shown + "\n")
         self.stream.flush()
 
     def _draw(self, progress: Progress) -> None:

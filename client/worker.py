@@ -31,7 +31,7 @@ from pathlib import Path
 from typing import Any
 
 from honing.client._client import FINISHED, Client
-from honing.client.errors import ClientError, Conflict, NotFound, ValidationFailed
+from honing.client.errors import ClientError, Conflict, ValidationFailed
 
 __all__ = ["Progress", "RunResult", "Worker", "WorkerOptions", "run_command", "substitute"]
 
@@ -321,10 +321,8 @@ class Worker:
     def _poll(self) -> None:
         try:
             summary = self.client.posterior(self.calibration_id)
-        except ClientError as exc:
-            if isinstance(exc, NotFound) and self.error is None:
-                self.error = exc
-            return
+        except ClientError:
+            return  # progress only: leasing and reporting surface real problems
         diagnostics = summary.get("diagnostics") or {}
         error = diagnostics.get("validation_error")
         self._update(

@@ -1,0 +1,304 @@
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+import pytest
+from honing.client.cli import main
+
+CAL = "/v1/calibrations/c1"
+
+
+def calibration(status: str) -> dict[str, Any]:
+    return {"id": "c1", "status": status, "round": 4, "runs_completed": 40, "runs_failed": 1}
+
+
+def test_help_lists_every_command_and_exit_code(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["--help"]) == 0
+    text = capsys.readouterr().out
+    for name in ("serve", "demo", "create", "worker", "status", "posterior", "samples", "runs"):
+        assert f"    {name}" in text
+    for code in ("0 ", "1 ", "2 ", "3 ", "4 ", "5 ", "130", "143"):
+        assert f"\n  {code}" in text
+
+
+def test_worker_help_explains_the_protocol(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["worker", "--help"]) == 0
+    text = capsys.readouterr().out
+    for word in ("HONING_PARAMS", "HONING_P_<name>", "HONING_RUN_ID", "HONING_OUTPUTS", "{name}"):
+        assert word in text
+
+
+def test_usage_errors_exit_2(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["no-such-command"]) == 2
+    assert main(["status"]) == 2
+    assert main([]) == 2
+    assert main(["worker", "c1", "-j", "0", "--", "true"]) == 2
+    capsys.readouterr()
+
+
+@pytest.mark.parametrize(
+    ("status", "code"),
+    [("converged", 0), ("budget_exhausted", 3), ("failed", 5), ("collecting", 4), ("fitting", 4)],
+)
+def test_status_exit_codes(fake_server: Any, cli: Any, status: str, code: int) -> None:
+    fake_server.on("GET", CAL, calibration(status))
+    result = cli("status", "c1", url=fake_server.url, token="t")
+    assert result.returncode == code, result.stderr
+    assert result.stdout.startswith(f"c1  {status}  round 4  runs 40 done, 1 failed")
+
+
+def test_status_wait_times_out_with_4(fake_server: Any, cli: Any) -> None:
+    fake_server.on("GET", CAL, calibration("collecting"))
+    result = cli(
+        "status",
+        "c1",
+        "--wait",
+        "--timeout",
+        "0.5",
+        "--interval",
+        "0.1",
+        url=fake_server.url,
+        token="t",
+    )
+    assert result.returncode == 4
+    assert len(fake_server.bodies("GET", CAL)) >= 2
+
+
+def test_status_wait_returns_once_finished(fake_server: Any, cli: Any) -> None:
+    answers = iter(["collecting", "fitting", "converged"])
+    fake_server.on_call("GET", CAL, lambda body: (200, calibration(next(answers)), {}))
+    result = cli(
+        "status", "c1", "--wait", "--interval", "0.1", "--json", url=fake_server.url, token="t"
+    )
+    assert result.returncode == 0
+    assert json.loads(result.stdout)["status"] == "converged"
+
+
+def test_server_problem_is_one_line_on_stderr(
+    fake_server: Any, cli: Any, one_line_error: Any
+) -> None:
+    result = cli("posterior", "nope", url=fake_server.url, token="t")
+    assert result.returncode == 1
+    assert result.stdout == ""
+    one_line_error(result, "Not Found (404)", "/v1/calibrations/nope/posterior")
+
+
+def test_unreachable_server_is_one_line(cli: Any, one_line_error: Any) -> None:
+    # Port 9 (discard) on loopback: nothing listens there in a test machine.
+    result = cli("status", "c1", url="http://127.0.0.1:9", token="t")
+    assert result.returncode == 1
+    one_line_error(result, "cannot reach http://127.0.0.1:9")
+
+
+def test_missing_token_is_explained(cli: Any, one_line_error: Any) -> None:
+    result = cli("status", "c1", url="http://127.0.0.1:9")
+    assert result.returncode == 1
+    one_line_error(result, "no token", "HONING_TOKEN")
+
+
+def test_unreadable_spec_is_one_line(cli: Any, one_line_error: Any, tmp_path: Path) -> None:
+    bad = tmp_path / "spec.toml"
+    bad.write_text("name = [unclosed\n")
+    result = cli("create", str(bad), url="http://127.0.0.1:9")
+    assert result.returncode == 1
+    one_line_error(result, "is not valid TOML")
+    result = cli("create", str(tmp_path / "missing.json"), url="http://127.0.0.1:9")
+    one_line_error(result, "cannot read the spec")
+
+
+def test_worker_exits_0_once_converged(fake_server: Any, cli: Any) -> None:
+    fake_server.on("POST", f"{CAL}/runs", {"runs": [], "status": "converged"})
+    fake_server.on("GET", f"{CAL}/posterior", {"round": 9, "status": "converged"})
+    result = cli("worker", "c1", "--", "false", url=fake_server.url, token="t")
+    assert result.returncode == 0, result.stderr
+    assert "converged" in result.stderr
+
+
+def test_worker_exits_3_when_the_budget_is_used_up(fake_server: Any, cli: Any) -> None:
+    fake_server.on("POST", f"{CAL}/runs", {"runs": [], "status": "budget_exhausted"})
+    result = cli("worker", "c1", "-q", "--", "false", url=fake_server.url, token="t")
+    assert result.returncode == 3
+    assert result.stderr == ""
+
+
+def test_worker_stops_on_a_refused_token(fake_server: Any, cli: Any, one_line_error: Any) -> None:
+    fake_server.on(
+        "POST",
+        f"{CAL}/runs",
+        {"title": "Forbidden", "status": 403, "detail": "wrong token for this calibration"},
+        status=403,
+    )
+    result = cli("worker", "c1", "-q", "--", "true", url=fake_server.url, token="bad")
+    assert result.returncode == 1
+    one_line_error(result, "Forbidden (403): wrong token")
+
+
+def test_refused_outputs_are_reported_as_a_failed_run(fake_server: Any, cli: Any) -> None:
+    leases = iter([{"runs": [{"run_id": "r1", "parameters": {"a": 1.0}}], "status": "collecting"}])
+    fake_server.on_call(
+        "POST",
+        f"{CAL}/runs",
+        lambda body: (200, next(leases, {"runs": [], "status": "budget_exhausted"}), {}),
+    )
+
+    def report(body: dict[str, Any]) -> tuple[int, Any, dict[str, str]]:
+        if "outputs" in body:
+            return (
+                422,
+                {
+                    "title": "Invalid outputs",
+                    "status": 422,
+                    "detail": "outputs do not fit",
+                    "errors": [{"loc": ["outputs", "y"], "msg": "expected 4 values, got 1"}],
+                },
+                {},
+            )
+        return 200, {"run_id": "r1", "state": "failed", "trust": None}, {}
+
+    fake_server.on_call("PUT", f"{CAL}/runs/r1", report)
+    code = "import json, os; json.dump({'y': [1]}, open(os.environ['HONING_OUTPUTS'], 'w'))"
+    result = cli(
+        "worker", "c1", "-q", "--", sys.executable, "-c", code, url=fake_server.url, token="t"
+    )
+    assert result.returncode == 3, result.stderr
+    puts = fake_server.bodies("PUT", f"{CAL}/runs/r1")
+    assert puts[0] == {"outputs": {"y": [1.0]}}
+    assert "outputs.y: expected 4 values, got 1" in puts[1]["error"]
+
+
+def test_worker_honours_retry_after_while_the_server_refits(fake_server: Any, cli: Any) -> None:
+    answers = iter(
+        [
+            ({"runs": [], "status": "fitting"}, {"Retry_After": "0"}),
+            ({"runs": [{"run_id": "r1", "parameters": {"a": 2.0}}], "status": "collecting"}, {}),
+        ]
+    )
+
+    def lease(body: dict[str, Any]) -> tuple[int, Any, dict[str, str]]:
+        answer, headers = next(answers, ({"runs": [], "status": "converged"}, {}))
+        return 200, answer, headers
+
+    fake_server.on_call("POST", f"{CAL}/runs", lease)
+    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "done", "trust": 1.0})
+    code = (
+        "import json, os; a = float(os.environ['HONING_P_a']);"
+        "json.dump({'y': [a]}, open(os.environ['HONING_OUTPUTS'], 'w'))"
+    )
+    result = cli(
+        "worker",
+        "c1",
+        "--name",
+        "bench-3",
+        "--",
+        sys.executable,
+        "-c",
+        code,
+        url=fake_server.url,
+        token="t",
+    )
+    assert result.returncode == 0, result.stderr
+    assert fake_server.bodies("PUT", f"{CAL}/runs/r1") == [{"outputs": {"y": [2.0]}}]
+    leases = fake_server.bodies("POST", f"{CAL}/runs")
+    assert len(leases) == 3
+    assert leases[0] == {"count": 1, "worker": "bench-3", "lease_seconds": 900.0}
+
+
+# -- Ctrl-C ------------------------------------------------------------------------------
+
+
+def _slow_run_server(fake_server: Any) -> None:
+    leases = iter([{"runs": [{"run_id": "r1", "parameters": {"a": 1.5}}], "status": "collecting"}])
+    fake_server.on_call(
+        "POST",
+        f"{CAL}/runs",
+        lambda body: (
+            200,
+            next(leases, {"runs": [], "status": "collecting"}),
+            {"Retry_After": "1"},
+        ),
+    )
+    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "done", "trust": 1.0})
+
+
+def _start_worker(fake_server: Any, tmp_path: Path, hold: str) -> tuple[subprocess.Popen, Path]:
+    started = tmp_path / "started"
+    # The command signals that it runs, then waits for the test to release it (or forever).
+    code = f"""
+import json, os, pathlib, time
+pathlib.Path({str(started)!r}).write_text("yes")
+while not pathlib.Path({hold!r}).exists():
+    time.sleep(0.05)
+json.dump({{"y": [float(os.environ["HONING_P_a"])]}}, open(os.environ["HONING_OUTPUTS"], "w"))
+"""
+    env = {k: v for k, v in os.environ.items() if not k.startswith("HONING_")}
+    env.update(HONING_URL=fake_server.url, HONING_TOKEN="t")
+    proc = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "honing.client.cli",
+            "worker",
+            "c1",
+            "-q",
+            "--",
+            sys.executable,
+            "-c",
+            code,
+        ],
+        env=env,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    while not started.exists():
+        assert proc.poll() is None, proc.stderr.read() if proc.stderr else ""
+        time.sleep(0.05)
+    return proc, started
+
+
+def test_ctrl_c_finishes_and_reports_the_run_in_hand(fake_server: Any, tmp_path: Path) -> None:
+    _slow_run_server(fake_server)
+    release = tmp_path / "release"
+    proc, _ = _start_worker(fake_server, tmp_path, str(release))
+    proc.send_signal(signal.SIGINT)
+    # The worker keeps waiting for its command; let the command finish now.
+    while "stopping" not in (line := proc.stderr.readline()):
+        assert line, "worker ended before announcing the stop"
+    release.write_text("go")
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, err
+    assert fake_server.bodies("PUT", f"{CAL}/runs/r1") == [{"outputs": {"y": [1.5]}}]
+    assert len(fake_server.bodies("POST", f"{CAL}/runs")) == 1, "no leasing after Ctrl-C"
+    assert "Traceback" not in err
+
+
+def test_second_ctrl_c_terminates_and_reports_failed(fake_server: Any, tmp_path: Path) -> None:
+    _slow_run_server(fake_server)
+    proc, _ = _start_worker(fake_server, tmp_path, str(tmp_path / "never"))
+    proc.send_signal(signal.SIGINT)
+    while "stopping" not in (line := proc.stderr.readline()):
+        assert line, "worker ended before announcing the stop"
+    proc.send_signal(signal.SIGINT)
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, err
+    (report,) = fake_server.bodies("PUT", f"{CAL}/runs/r1")
+    assert "interrupted" in report["error"]
+
+
+def test_sigterm_is_handled_like_ctrl_c(fake_server: Any, tmp_path: Path) -> None:
+    _slow_run_server(fake_server)
+    release = tmp_path / "release"
+    proc, _ = _start_worker(fake_server, tmp_path, str(release))
+    proc.send_signal(signal.SIGTERM)
+    while "stopping" not in (line := proc.stderr.readline()):
+        assert line, "worker ended before announcing the stop"
+    release.write_text("go")
+    proc.communicate(timeout=120)
+    assert proc.returncode == 143
+    assert fake_server.bodies("PUT", f"{CAL}/runs/r1") == [{"outputs": {"y": [1.5]}}]

@@ -26,7 +26,7 @@ from datetime import UTC, datetime
 from typing import Any
 
 import numpy as np
-from honing.engine.spec import CalibrationSpec, Observation
+from honing.engine.spec import CalibrationSpec, Observation, Parameter
 from honing.engine.state import EngineState
 from matplotlib.axes import Axes
 from matplotlib.backends.backend_agg import FigureCanvasAgg
@@ -286,10 +286,13 @@ def _marginals_section(
     spec: CalibrationSpec, columns: list[str], draws: np.ndarray | None, fitted: bool
 ) -> str:
     label = "posterior draws" if fitted else "draws before the first fit"
-    figures = []
+    figures, missing = [], []
     for j, name in enumerate(columns):
         param = spec.parameters[j] if j < spec.dim else None
         column = None if draws is None else draws[:, j]
+        if param is None and column is None:
+            missing.append(name)
+            continue
         fig = _marginal_figure(name, param.unit if param else None, param, column, label)
         what = "prior density" if param else "no stated prior"
         figures.append(
@@ -300,20 +303,22 @@ def _marginals_section(
         f"{PRIOR_MASS:.1%} range. A close-up panel appears when the posterior is much narrower "
         "than the prior."
     )
+    if missing:
+        note += f" No draws yet of {html.escape(', '.join(missing))}, which has no stated prior."
     return (
         '<section id="marginals"><h2>Each parameter: posterior against prior</h2>'
         f'<p class="note">{note}</p><div class="plots">{"".join(figures)}</div></section>'
     )
 
 
-def _marginal_caption(name: str, param: Any) -> str:
+def _marginal_caption(name: str, param: Parameter | None) -> str:
     if param is None:
         return f"{name}: estimated noise multiplier on every stated sd (no prior density drawn)."
     return f"{name}: {param.prior.kind} prior."
 
 
 def _marginal_figure(
-    name: str, unit: str | None, param: Any, column: np.ndarray | None, label: str
+    name: str, unit: str | None, param: Parameter | None, column: np.ndarray | None, label: str
 ) -> Figure:
     prior_range = _prior_range(param) if param is not None else None
     span = list(prior_range) if prior_range else []
@@ -349,17 +354,12 @@ def _marginal_figure(
             with np.errstate(over="ignore", under="ignore"):
                 density = np.exp(np.asarray(param.prior.logpdf(grid), dtype=float))
             ax.plot(grid, density, color=_PRIOR, lw=1.6, label="prior density")
-        if column is None and param is None:
-            ax.text(
-                0.5, 0.5, "no draws available", ha="center", va="center", transform=ax.transAxes
-            )
         ax.set_xlim(lo, hi)
         ax.set_ylim(bottom=0)
         ax.set_xlabel(xlabel)
         ax.set_yticks([])
         ax.set_title("close-up of the posterior" if k == 1 else _tex(name), fontsize=10)
-    if column is not None or param is not None:
-        axes[0].legend(fontsize=7, loc="upper right", frameon=False)
+    axes[0].legend(fontsize=7, loc="upper right", frameon=False)
     return fig
 
 
@@ -391,7 +391,7 @@ def _pairs_section(columns: list[str], draws: np.ndarray | None, params: Mapping
         rows = np.arange(n)
         notes.append(f"Showing all {n:,} draws.")
     names = [columns[j] for j in chosen]
-    fig = _pairs_figure(names, draws[np.ix_(rows, chosen)])
+    fig = _pairs_figure(names, draws[np.ix_(rows, np.array(chosen))])
     caption = (
         "Below the diagonal: draws of each pair; on it: each parameter's histogram; above it: "
         "the correlation of the draws. " + " ".join(notes)
@@ -641,7 +641,7 @@ def _usable_pool(pool: Any, n_columns: int) -> tuple[np.ndarray | None, str | No
     return finite, None
 
 
-def _prior_range(param: Any) -> tuple[float, float] | None:
+def _prior_range(param: Parameter) -> tuple[float, float] | None:
     tail = (1.0 - PRIOR_MASS) / 2.0
     lo, hi = np.asarray(param.prior.ppf(np.array([tail, 1.0 - tail])), dtype=float)
     if not (math.isfinite(lo) and math.isfinite(hi)) or hi <= lo:

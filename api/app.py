@@ -7,6 +7,7 @@ from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
 from fastapi import FastAPI
+
 from honing.api.auth import hash_token
 from honing.api.limits import BodyLimitMiddleware
 from honing.api.metrics import Metrics, RequestMetricsMiddleware

@@ -6,6 +6,7 @@ from typing import Annotated
 
 from fastapi import Depends, Request
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
+
 from honing.api.auth import check_token
 from honing.api.service import CalibrationService
 from honing.api.store import CalibrationMeta, Store

@@ -7,8 +7,9 @@ accepted body is then replayed to the app, which parses JSON from memory anyway.
 
 from __future__ import annotations
 
-from honing.api.problems import PROBLEM_MEDIA_TYPE, problem_bytes
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+from honing.api.problems import PROBLEM_MEDIA_TYPE, problem_bytes
 
 __all__ = ["BodyLimitMiddleware"]
 

@@ -17,11 +17,12 @@ from typing import Any
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
+from starlette.exceptions import HTTPException as StarletteHTTPException
+
 from honing.api.errors import Forbidden, NotFound, Unauthorized
 from honing.api.models import Problem
 from honing.api.store import StoreUnavailable
 from honing.engine.errors import ConflictError, SpecError, StateError
-from starlette.exceptions import HTTPException as StarletteHTTPException
 
 __all__ = ["PROBLEM_MEDIA_TYPE", "install_problem_handlers", "problem_bytes", "problem_responses"]
 

@@ -14,6 +14,7 @@ from pathlib import Path
 from types import FrameType
 
 import uvicorn
+
 from honing.api.app import create_app
 from honing.api.logs import configure_logging
 from honing.api.refitter import Refitter

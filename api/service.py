@@ -21,6 +21,7 @@ from datetime import UTC, datetime
 from typing import Any
 
 import numpy as np
+
 from honing.api.auth import check_token, hash_token, new_token
 from honing.api.errors import NotFound
 from honing.api.metrics import Metrics

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from fastapi import APIRouter, Response, status
+
 from honing.api.deps import AdminAccess, AuthorizedCalibration, ServiceDep
 from honing.api.models import CalibrationResponse, CreateResponse, SpecRequest
 from honing.api.problems import problem_responses

@@ -3,10 +3,11 @@
 from __future__ import annotations
 
 from fastapi import APIRouter, Request, Response
+from prometheus_client import CONTENT_TYPE_LATEST, generate_latest
+
 from honing.api.deps import StoreDep
 from honing.api.models import HealthResponse
 from honing.api.problems import problem_responses
-from prometheus_client import CONTENT_TYPE_LATEST, generate_latest
 
 router = APIRouter(tags=["health"])
 

@@ -8,6 +8,7 @@ from typing import Annotated, Literal
 
 from fastapi import APIRouter, Query, Response
 from fastapi.responses import HTMLResponse
+
 from honing.api.deps import AuthorizedCalibration, ServiceDep
 from honing.api.models import PosteriorResponse, SamplesResponse
 from honing.api.problems import problem_responses

@@ -7,6 +7,7 @@ import io
 from typing import Annotated, Literal
 
 from fastapi import APIRouter, Query, Request, Response
+
 from honing.api.deps import AuthorizedCalibration, ServiceDep
 from honing.api.models import (
     ImportRequest,

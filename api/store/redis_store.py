@@ -14,6 +14,7 @@ from contextlib import contextmanager
 from typing import Any
 
 import redis
+
 from honing.api.store.base import (
     CalibrationMeta,
     LeaseResult,

@@ -6,6 +6,7 @@ from collections.abc import Iterator
 
 import pytest
 from helpers_api import AppClient, Calibration, FakeClock, create, make_client
+
 from honing.api.refitter import Refitter
 from honing.api.settings import Settings
 from honing.api.store import Store, open_store

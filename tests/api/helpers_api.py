@@ -9,6 +9,7 @@ from typing import Any
 import anyio.from_thread
 import httpx
 from fastapi import FastAPI
+
 from honing.api.app import create_app
 from honing.api.settings import Settings
 

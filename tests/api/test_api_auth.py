@@ -2,6 +2,7 @@ from pathlib import Path
 
 import pytest
 from helpers_api import SPEC, AppClient, Calibration, create, lease, make_client, report
+
 from honing.api.settings import Settings
 
 

@@ -3,6 +3,7 @@ import threading
 from collections import Counter
 
 from helpers_api import SPEC, simulate
+
 from honing.api.service import CalibrationService
 from honing.api.store import Store
 

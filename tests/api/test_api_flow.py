@@ -2,6 +2,7 @@ import csv
 import io
 
 from helpers_api import SPEC, AppClient, Calibration, create, lease, report, simulate
+
 from honing.api.refitter import Refitter
 
 
@@ -166,6 +167,7 @@ def test_delete_removes_everything(client: AppClient, calibration: Calibration) 
 def test_delete_leaves_no_redis_key(redis_url: str) -> None:
     import redis
     from helpers_api import make_client
+
     from honing.api.settings import Settings
 
     with make_client(Settings(store_url=redis_url)) as client:

@@ -2,8 +2,9 @@ import json
 from datetime import datetime
 
 from helpers_api import SPEC, AppClient, Calibration, FakeClock, create, lease, report, simulate
-from honing.api.refitter import Refitter
 from test_api_auth import assert_problem
+
+from honing.api.refitter import Refitter
 
 
 def test_lease_expires_and_its_point_is_handed_out_again(

@@ -3,9 +3,10 @@ import time
 
 import pytest
 from helpers_api import create, lease, make_client, report
+from test_api_auth import assert_problem
+
 from honing.api.settings import Settings
 from honing.api.store.redis_store import RedisStore
-from test_api_auth import assert_problem
 
 #: Bounded wait for the client to reconnect after Redis is back (not a speed assertion).
 RECONNECT_WAIT = 30.0

@@ -2,8 +2,9 @@ import json
 
 import pytest
 from helpers_api import SPEC, AppClient, Calibration, lease, make_client, report, simulate
-from honing.api.settings import Settings
 from test_api_auth import assert_problem
+
+from honing.api.settings import Settings
 
 
 def locs(body: dict) -> list[list]:

@@ -1,6 +1,7 @@
 import json
 
 import pytest
+
 from honing.api.store import NewCalibration, Store
 
 

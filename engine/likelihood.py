@@ -27,6 +27,10 @@ __all__ = [
 #: Share of the retained runs' residual variance the components keep (common practice: 0.999
 #: to 0.9999 for smooth simulator outputs); what is dropped is carried as `residual_energy`.
 ENERGY_FRACTION = 0.9999
+#: Variance of a component's scores, in squared noise units, above which it is kept whatever
+#: its share: a direction the retained runs barely vary in can still move the misfit by more
+#: than 0.01 when the posterior is much narrower than the runs' spread.
+MIN_COMPONENT_VAR = 1e-4
 #: Cap on the number of components, which bounds the surrogate's cost for long outputs.
 MAX_COMPONENTS = 30
 
@@ -79,6 +83,9 @@ class OutputReduction:
     ) -> OutputReduction:
         """Fit the components by a thin SVD of the weighted, centred residuals.
 
+        Components are kept until they hold `energy` of the variance, and every component
+        whose variance reaches `MIN_COMPONENT_VAR` is kept too, up to `MAX_COMPONENTS`.
+
         The SVD of the ``(n_runs, output_size)`` matrix costs ``O(n_runs^2 output_size)`` and
         never forms an output-by-output matrix, so memory stays linear in the output length.
         """
@@ -88,10 +95,10 @@ class OutputReduction:
         _, s, vt = np.linalg.svd(centred, full_matrices=False)
         var = s**2
         total = var.sum()
-        if total <= 0.0:
-            k = 1
-        else:
+        k = 1
+        if total > 0.0:
             k = int(np.searchsorted(np.cumsum(var) / total, energy) + 1)
+            k = max(k, int(np.count_nonzero(var >= MIN_COMPONENT_VAR)))
         k = max(1, min(k, MAX_COMPONENTS, vt.shape[0]))
         return cls(mean=mean, components=vt[:k].T.copy(), residual_energy=float(var[k:].sum()))
 

@@ -27,7 +27,7 @@ from honing.api.errors import NotFound
 from honing.api.metrics import Metrics
 from honing.api.store import CalibrationMeta, NewCalibration, RunRecord, Store
 from honing.engine.errors import ConflictError, SpecError
-from honing.engine.rounds import posterior_samples, refit_due, start, trust_index
+from honing.engine.rounds import posterior_samples, prediction_error, refit_due, start, trust_index
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import EngineState, RunTable, state_from_bytes, state_to_bytes
 
@@ -102,6 +102,7 @@ def run_table(spec: CalibrationSpec, records: Sequence[RunRecord]) -> RunTable:
     outputs = np.full((n, spec.output_size), np.nan)
     failed = np.zeros(n, dtype=bool)
     trust = np.ones(n)
+    error = np.full(n, np.nan)
     for i, r in enumerate(records):
         result = r.result or {}
         if r.state == "failed" or result.get("outputs") is None:
@@ -109,7 +110,10 @@ def run_table(spec: CalibrationSpec, records: Sequence[RunRecord]) -> RunTable:
             continue
         outputs[i] = _flat_outputs(spec, result["outputs"])
         trust[i] = float(result.get("trust") or 1.0)
-    return RunTable(theta, outputs, failed, trust)
+        error[i] = prediction_error(
+            spec, _decode_prediction(r.point.get("prediction")), outputs[i]
+        )
+    return RunTable(theta, outputs, failed, trust, error)
 
 
 @dataclass(frozen=True)

@@ -84,7 +84,7 @@ def select_batch(
     ndarray, shape (n, dim)
     """
     dim = pool.shape[1]
-    n_defensive = int(round(defensive_fraction * n)) if n >= 1 / defensive_fraction else 0
+    n_defensive = round(defensive_fraction * n) if n >= 1 / defensive_fraction else 0
     mean = pool.mean(axis=0)
     cov = np.cov(pool, rowvar=False).reshape(dim, dim) + 1e-12 * np.eye(dim)
     chol = np.linalg.cholesky(cov)
@@ -112,9 +112,7 @@ def _widened_draws(
     return out[:n]
 
 
-def _max_min(
-    candidates: np.ndarray, n: int, fixed: np.ndarray, chol: np.ndarray
-) -> np.ndarray:
+def _max_min(candidates: np.ndarray, n: int, fixed: np.ndarray, chol: np.ndarray) -> np.ndarray:
     """Greedy max-min choice of ``n`` candidates given points already placed."""
     white = np.linalg.solve(chol, candidates.T).T
     nearest = np.full(white.shape[0], np.inf)

@@ -103,9 +103,7 @@ def marginal_kl(post: np.ndarray, prior_logpdf: np.ndarray, post_edges: np.ndarr
     return float(np.sum(p[mask] * widths[mask] * (np.log(p[mask]) - prior_logpdf[mask])))
 
 
-def parameter_summary(
-    draws: np.ndarray, map_value: float, prior_sd: float
-) -> dict[str, Any]:
+def parameter_summary(draws: np.ndarray, map_value: float, prior_sd: float) -> dict[str, Any]:
     """Mean, sd, median, 95% credible interval, MAP and prior sd of one parameter's draws."""
     lo, med, hi = np.quantile(draws, [0.025, 0.5, 0.975])
     sd = float(np.std(draws, ddof=1))

@@ -13,8 +13,9 @@ from typing import Any
 
 import numpy as np
 
+from honing.engine.diagnostics import trust_from_error
 from honing.engine.errors import ConflictError, SpecError
-from honing.engine.rounds import refit, refit_due, start, trust_index
+from honing.engine.rounds import prediction_error, refit, refit_due, start
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import EngineState, RunTable, state_from_bytes, state_to_bytes
 
@@ -33,6 +34,7 @@ class Proposal:
     outputs: np.ndarray | None = None
     failed: bool = False
     trust: float | None = None
+    error: float = float("nan")
 
 
 class CalibrationLoop:
@@ -88,8 +90,10 @@ class CalibrationLoop:
             raise SpecError.at(("outputs",), "give either outputs or an error")
         flat = None if outputs is None else self.spec.flatten_outputs(outputs)
         if point_id in self.finished:
-            same = run.failed if flat is None else (
-                run.outputs is not None and np.array_equal(run.outputs, flat)
+            same = (
+                run.failed
+                if flat is None
+                else (run.outputs is not None and np.array_equal(run.outputs, flat))
             )
             if not same:
                 raise ConflictError(f"point {point_id} already has a different result")
@@ -98,7 +102,8 @@ class CalibrationLoop:
             run.failed = True
         else:
             run.outputs = flat
-            run.trust = trust_index(self.spec, run.prediction, flat)
+            run.error = prediction_error(self.spec, run.prediction, flat)
+            run.trust = 1.0 if np.isnan(run.error) else trust_from_error(run.error)
         self.finished.append(point_id)
         self._maybe_refit()
         return run.trust
@@ -124,6 +129,7 @@ class CalibrationLoop:
             ).reshape(len(done), size),
             failed=np.array([p.failed for p in done], dtype=bool),
             trust=np.array([1.0 if p.trust is None else p.trust for p in done]),
+            error=np.array([p.error for p in done]),
         )
 
     def dump(self) -> bytes:

@@ -88,8 +88,9 @@ def start(spec: CalibrationSpec) -> EngineState:
         "runs_completed": 0,
         "status": "collecting",
         "parameters": {
-            p.name: parameter_summary(prior[:, i], float(p.prior.ppf(np.array([0.5]))[0]),
-                                      p.prior.sd)
+            p.name: parameter_summary(
+                prior[:, i], float(p.prior.ppf(np.array([0.5]))[0]), p.prior.sd
+            )
             for i, p in enumerate(spec.parameters)
         },
         "correlation": np.corrcoef(prior, rowvar=False).reshape(spec.dim, spec.dim).tolist(),
@@ -138,9 +139,7 @@ def prediction_error(
     return float(np.sqrt(np.mean(diff**2)))
 
 
-def trust_index(
-    spec: CalibrationSpec, predicted: np.ndarray | None, outputs: np.ndarray
-) -> float:
+def trust_index(spec: CalibrationSpec, predicted: np.ndarray | None, outputs: np.ndarray) -> float:
     """Trust of one run (see `honing.engine.diagnostics.trust_from_error`); 1 with no
     prediction, as for the initial design and imported runs."""
     err = prediction_error(spec, predicted, outputs)
@@ -184,7 +183,7 @@ def refit(spec: CalibrationSpec, state: EngineState, runs: RunTable) -> EngineSt
     kept = order[-keep:]
     residuals = whiten(spec, runs.outputs[kept])
     weights = np.clip(runs.trust[kept], 1e-12, 1.0)
-    validation = _validation_error(spec, state, runs)
+    validation = _validation_error(state, runs)
 
     surrogate = fit_surrogate(
         xi_all[kept], residuals, weights, Frame.local(xi_all[kept], weights), spec.max_degree
@@ -306,24 +305,12 @@ def _empty_diagnostics() -> dict[str, Any]:
     }
 
 
-def _validation_error(
-    spec: CalibrationSpec, state: EngineState, runs: RunTable
-) -> float | None:
-    """Rms prediction error in noise units over runs finished since the last fit.
-
-    Each run is matched to the proposal it came from by its exact parameter values, so only
-    predictions made before the run was evaluated count.
-    """
-    if state.predictions.shape[0] == 0:
-        return None
-    lookup = {row.tobytes(): i for i, row in enumerate(state.proposals)}
-    errors = []
-    for r in range(state.runs_at_fit, runs.n_runs):
-        i = lookup.get(runs.theta[r].tobytes())
-        if runs.failed[r] or i is None:
-            continue
-        errors.append(prediction_error(spec, state.predictions[i], runs.outputs[r]) ** 2)
-    return float(np.sqrt(np.mean(errors))) if errors else None
+def _validation_error(state: EngineState, runs: RunTable) -> float | None:
+    """Rms prediction error in noise units over runs finished since the last fit, each scored
+    against the prediction made before it ran (runs without one are left out)."""
+    recent = runs.error[state.runs_at_fit :][~runs.failed[state.runs_at_fit :]]
+    recent = recent[np.isfinite(recent)]
+    return float(np.sqrt(np.mean(recent**2))) if recent.size else None
 
 
 def _loo_error(surrogate: Surrogate, residuals: np.ndarray) -> float:
@@ -395,8 +382,10 @@ def _initial_walkers(
     log_post: Any,
     rng: np.random.Generator,
 ) -> tuple[np.ndarray, Laplace | None]:
-    """Starting walkers, and the Laplace fit when there is one: a Laplace ball at the mode, searched from the best of the previous
-    pool and the retained runs; failing that, those candidates resampled with tempered
+    """Starting walkers, and the Laplace fit when there is one.
+
+    A Laplace ball at the mode, searched from the best of the previous pool and the retained
+    runs; failing that, those candidates resampled with tempered
     weights ``exp((lp - max) / T)``, T raised until the weights' effective size is at least
     three walkers' worth, which keeps the ensemble spread out."""
     walkers = n_walkers(spec.dim)

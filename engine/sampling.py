@@ -15,7 +15,14 @@ import emcee
 import numpy as np
 from scipy import optimize
 
-__all__ = ["ChainResult", "Laplace", "independence_move", "laplace_fit", "n_walkers", "sample_posterior"]
+__all__ = [
+    "ChainResult",
+    "Laplace",
+    "independence_move",
+    "laplace_fit",
+    "n_walkers",
+    "sample_posterior",
+]
 
 LogProb = Callable[[np.ndarray], np.ndarray]
 

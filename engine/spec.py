@@ -118,7 +118,7 @@ class CalibrationSpec:
             try:
                 values = _number_list(outputs[obs.name], loc)
             except SpecError as exc:
-                errors.extend((tuple(e["loc"]), str(e["msg"])) for e in exc.errors)  # type: ignore[arg-type]
+                errors.extend((tuple(e["loc"]), str(e["msg"])) for e in exc.errors)
                 continue
             if values.shape[0] != obs.size:
                 errors.append((loc, f"expected {obs.size} values, got {values.shape[0]}"))
@@ -330,7 +330,7 @@ def _parameters(value: Any) -> tuple[Parameter, ...]:
                 raise SpecError.at((*loc, "unit"), "must be a string")
             out.append(Parameter(name, prior, unit))
         except SpecError as exc:
-            errors.extend((tuple(e["loc"]), str(e["msg"])) for e in exc.errors)  # type: ignore[arg-type]
+            errors.extend((tuple(e["loc"]), str(e["msg"])) for e in exc.errors)
     names = [p.name for p in out]
     errors.extend(
         (("parameters", i, "name"), f"duplicate name {n!r}")
@@ -366,7 +366,7 @@ def _observations(value: Any) -> tuple[Observation, ...]:
                 raise SpecError.at((*loc, "values"), "must not be empty")
             sd_raw = item.get("sd")
             if _is_number(sd_raw):
-                sd = np.full(values.shape, float(sd_raw))
+                sd = np.full(values.shape, float(sd_raw))  # type: ignore[arg-type]
             else:
                 sd = _number_list(sd_raw, (*loc, "sd"))
                 if sd.shape != values.shape:
@@ -384,7 +384,7 @@ def _observations(value: Any) -> tuple[Observation, ...]:
                     )
             out.append(Observation(name, values, sd, coords))
         except SpecError as exc:
-            errors.extend((tuple(e["loc"]), str(e["msg"])) for e in exc.errors)  # type: ignore[arg-type]
+            errors.extend((tuple(e["loc"]), str(e["msg"])) for e in exc.errors)
     names = [o.name for o in out]
     errors.extend(
         (("observations", i, "name"), f"duplicate name {n!r}")

@@ -37,16 +37,28 @@ class RunTable:
     failed : ndarray of bool, shape (n_runs,)
     trust : ndarray, shape (n_runs,)
         Trust index of each run in (0, 1] (ignored for failed runs).
+    error : ndarray, shape (n_runs,), optional
+        Rms of (true - predicted) whitened residuals, the prediction made before the run;
+        NaN where there was none (initial design, imported runs). Defaults to all NaN.
     """
 
     theta: np.ndarray
     outputs: np.ndarray
     failed: np.ndarray
     trust: np.ndarray
+    error: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
     def __post_init__(self) -> None:
         n = self.theta.shape[0]
-        for label, arr in (("outputs", self.outputs), ("failed", self.failed), ("trust", self.trust)):
+        if self.error.shape[0] == 0 and n:
+            self.error = np.full(n, np.nan)
+        checks = (
+            ("outputs", self.outputs),
+            ("failed", self.failed),
+            ("trust", self.trust),
+            ("error", self.error),
+        )
+        for label, arr in checks:
             if arr.shape[0] != n:
                 raise ValueError(f"RunTable.{label} has {arr.shape[0]} rows, theta has {n}")
 
@@ -56,9 +68,7 @@ class RunTable:
 
     @classmethod
     def empty(cls, dim: int, output_size: int) -> RunTable:
-        return cls(
-            np.zeros((0, dim)), np.zeros((0, output_size)), np.zeros(0, bool), np.zeros(0)
-        )
+        return cls(np.zeros((0, dim)), np.zeros((0, output_size)), np.zeros(0, bool), np.zeros(0))
 
 
 @dataclass
@@ -106,7 +116,7 @@ class EngineState:
     def generator(self) -> np.random.Generator:
         """A generator positioned where the state's random stream left off."""
         bit = np.random.PCG64()
-        bit.state = self.rng
+        bit.state = self.rng  # type: ignore[assignment]
         return np.random.Generator(bit)
 
 

@@ -50,8 +50,7 @@ def scenario(dim: int, channels: int, length: int, seed: int = 0):
                 for i in range(dim)
             ],
             "observations": [
-                {"name": f"ch{c}", "values": data[c * length : (c + 1) * length].tolist(),
-                 "sd": sd}
+                {"name": f"ch{c}", "values": data[c * length : (c + 1) * length].tolist(), "sd": sd}
                 for c in range(channels)
             ],
             "design": {"initial_runs": 64, "batch_size": 32},

@@ -28,7 +28,9 @@ def test_gaussian_kl_matches_monte_carlo_with_scipy_densities():
 
 
 def test_gaussian_kl_zero_for_identical():
-    assert gaussian_kl(np.zeros(3), np.eye(3), np.zeros(3), np.eye(3)) == pytest.approx(0, abs=1e-12)
+    assert gaussian_kl(np.zeros(3), np.eye(3), np.zeros(3), np.eye(3)) == pytest.approx(
+        0, abs=1e-12
+    )
 
 
 def test_kl_tolerance_covers_sampling_noise_between_fits():

@@ -42,8 +42,10 @@ def test_linear_gaussian_matches_conjugate_posterior():
     truth = m0 + s0 * rng.normal(size=d)
     y = a @ truth + sigma * rng.normal(size=n_out)
     spec = _spec(
-        [{"name": f"p{i}", "prior": {"kind": "normal", "mean": m0[i], "sd": s0[i]}}
-         for i in range(d)],
+        [
+            {"name": f"p{i}", "prior": {"kind": "normal", "mean": m0[i], "sd": s0[i]}}
+            for i in range(d)
+        ],
         [{"name": "y", "values": y.tolist(), "sd": sigma}],
         design={"initial_runs": 12, "batch_size": 6},
         budget={"max_runs": 30},
@@ -87,7 +89,10 @@ def test_nonlinear_1d_matches_quadrature(sigma):
     # (scipy.integrate.simpson); the grid is refined around the mode so the narrowest case
     # has thousands of points across its width.
     coarse = np.linspace(0.2, 3.0, 20001)
-    loglik = lambda th: -0.5 * np.sum((_decay(th[:, None], t) - y) ** 2, axis=1) / sigma**2
+
+    def loglik(th):
+        return -0.5 * np.sum((_decay(th[:, None], t) - y) ** 2, axis=1) / sigma**2
+
     mode = coarse[np.argmax(loglik(coarse))]
     width = 12 * sigma / np.sqrt(np.sum((t * np.exp(-1.3 * t)) ** 2))
     grid = np.linspace(max(0.2, mode - width), min(3.0, mode + width), 40001)
@@ -110,8 +115,10 @@ def test_curved_2d_posterior_matches_emcee_on_true_model():
     sigma = np.array([0.3, 0.3, 0.6])
     y = np.array([2.0, 0.8, 1.4])
     spec = _spec(
-        [{"name": "a", "prior": {"kind": "normal", "mean": 1.0, "sd": 1.0}},
-         {"name": "b", "prior": {"kind": "uniform", "low": -2.0, "high": 3.0}}],
+        [
+            {"name": "a", "prior": {"kind": "normal", "mean": 1.0, "sd": 1.0}},
+            {"name": "b", "prior": {"kind": "uniform", "low": -2.0, "high": 3.0}},
+        ],
         [{"name": "obs", "values": y.tolist(), "sd": sigma.tolist()}],
         design={"initial_runs": 16, "batch_size": 8},
         budget={"max_runs": 120},
@@ -143,8 +150,10 @@ def test_curved_2d_posterior_matches_emcee_on_true_model():
 def _small_loop(seed=4):
     t = np.linspace(0.0, 1.0, 5)
     spec = _spec(
-        [{"name": "k", "prior": {"kind": "lognormal", "median": 1.0, "sigma_log": 0.5}},
-         {"name": "c", "prior": {"kind": "uniform", "low": 0.0, "high": 2.0}}],
+        [
+            {"name": "k", "prior": {"kind": "lognormal", "median": 1.0, "sigma_log": 0.5}},
+            {"name": "c", "prior": {"kind": "uniform", "low": 0.0, "high": 2.0}},
+        ],
         [{"name": "y", "values": (np.exp(-1.2 * t) + 0.8).tolist(), "sd": 0.05}],
         design={"initial_runs": 10, "batch_size": 5},
         budget={"max_runs": 30},

@@ -10,8 +10,10 @@ def _spec(**extra):
         "name": "column",
         "parameters": [
             {"name": "velocity", "prior": {"kind": "uniform", "low": 0.05, "high": 2.0}},
-            {"name": "dispersivity", "prior": {"kind": "lognormal", "median": 0.02,
-                                               "sigma_log": 0.8}},
+            {
+                "name": "dispersivity",
+                "prior": {"kind": "lognormal", "median": 0.02, "sigma_log": 0.8},
+            },
         ],
         "observations": [
             {"name": "port_1", "values": [0.0, 0.12, 0.55], "sd": [0.02, 0.02, 0.03]},

@@ -110,9 +110,7 @@ def run_table(spec: CalibrationSpec, records: Sequence[RunRecord]) -> RunTable:
             continue
         outputs[i] = _flat_outputs(spec, result["outputs"])
         trust[i] = float(result.get("trust") or 1.0)
-        error[i] = prediction_error(
-            spec, _decode_prediction(r.point.get("prediction")), outputs[i]
-        )
+        error[i] = prediction_error(spec, _decode_prediction(r.point.get("prediction")), outputs[i])
     return RunTable(theta, outputs, failed, trust, error)
 
 
@@ -159,7 +157,10 @@ class CalibrationService:
             if spec is not None:
                 self._specs.move_to_end(meta.id)
                 return spec
-        spec = CalibrationSpec.from_dict(json.loads(meta.spec_json))
+        text = self.store.get_spec(meta.id)
+        if text is None:
+            raise NotFound(f"calibration {meta.id!r} does not exist")
+        spec = CalibrationSpec.from_dict(json.loads(text))
         with self._lock:
             self._specs[meta.id] = spec
             while len(self._specs) > _CACHE_SIZE:
@@ -255,7 +256,7 @@ class CalibrationService:
             "runs_queued": meta.queued,
             "created_at": rfc3339(meta.created_at),
             "error": meta.failed_error,
-            "spec": json.loads(meta.spec_json),
+            "spec": self.spec(meta).to_dict(),
         }
 
     def delete(self, calibration_id: str) -> None:

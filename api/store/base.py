@@ -42,11 +42,10 @@ class NewCalibration:
 
 @dataclass(frozen=True)
 class CalibrationMeta:
-    """A calibration's metadata and live counters, read in one step."""
+    """A calibration's metadata and live counters, read in one step (without the spec)."""
 
     id: str
     token_hash: str
-    spec_json: str
     created_at: float
     state_version: int
     round: int
@@ -127,6 +126,9 @@ class Store(Protocol):
 
     def get_meta(self, calibration_id: str) -> CalibrationMeta | None:
         """Metadata and counters, or None when the calibration does not exist."""
+
+    def get_spec(self, calibration_id: str) -> str | None:
+        """The spec JSON (read apart from the metadata: it can be megabytes), or None."""
 
     def delete(self, calibration_id: str) -> bool:
         """Remove the calibration and everything under it; False when it did not exist."""

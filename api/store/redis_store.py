@@ -213,6 +213,21 @@ return 0
 """
 
 
+# Metadata fields read on every request (the spec is read apart, and cached by the service).
+_META_FIELDS = [
+    "token_hash",
+    "created_at",
+    "state_version",
+    "round",
+    "engine_status",
+    "done",
+    "failed",
+    "leased",
+    "failed_error",
+    "refit_failures",
+]
+
+
 def _s(value: bytes | str | None) -> str | None:
     if value is None or isinstance(value, str):
         return value
@@ -297,6 +312,9 @@ class RedisStore:
 
     def _durable(self) -> None:
         # With AOF on Redis >= 7.2, wait until this connection's writes are fsynced locally.
+        # (Older servers have no WAITAOF: there 'appendfsync always' fsyncs before replying.)
+        if self._wait_aof is None:
+            self.startup_warnings()
         if self._wait_aof:
             self._r.execute_command("WAITAOF", 1, 0, 0)
 
@@ -332,17 +350,16 @@ class RedisStore:
         k = CalibrationKeys(calibration_id)
         with self._guard():
             pipe = self._r.pipeline(transaction=True)
-            pipe.hgetall(k.meta)
+            pipe.hmget(k.meta, _META_FIELDS)
             pipe.llen(k.proposals)
             pipe.llen(k.requeue)
             raw, n_proposals, n_requeue = pipe.execute()
-        if not raw:
+        if raw[0] is None:
             return None
-        m = {_s(a): _s(b) for a, b in raw.items()}
+        m = {f: _s(v) for f, v in zip(_META_FIELDS, raw, strict=True)}
         return CalibrationMeta(
             id=calibration_id,
             token_hash=str(m["token_hash"]),
-            spec_json=str(m["spec"]),
             created_at=float(str(m["created_at"])),
             state_version=int(str(m["state_version"])),
             round=int(str(m["round"])),
@@ -354,6 +371,10 @@ class RedisStore:
             failed_error=m.get("failed_error"),
             refit_failures=int(str(m.get("refit_failures") or 0)),
         )
+
+    def get_spec(self, calibration_id: str) -> str | None:
+        with self._guard():
+            return _s(self._r.hget(CalibrationKeys(calibration_id).meta, "spec"))
 
     def delete(self, calibration_id: str) -> bool:
         k = CalibrationKeys(calibration_id)

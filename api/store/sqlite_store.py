@@ -204,7 +204,7 @@ class SqliteStore:
     def get_meta(self, calibration_id: str) -> CalibrationMeta | None:
         with self._read() as db:
             row = db.execute(
-                "SELECT id, token_hash, spec, created_at, state_version, round, engine_status, "
+                "SELECT id, token_hash, created_at, state_version, round, engine_status, "
                 "done, failed, leased, failed_error, refit_failures FROM calibrations "
                 "WHERE id = ?",
                 (calibration_id,),
@@ -217,7 +217,6 @@ class SqliteStore:
         return CalibrationMeta(
             id=row["id"],
             token_hash=row["token_hash"],
-            spec_json=row["spec"],
             created_at=row["created_at"],
             state_version=row["state_version"],
             round=row["round"],
@@ -229,6 +228,13 @@ class SqliteStore:
             failed_error=row["failed_error"],
             refit_failures=row["refit_failures"],
         )
+
+    def get_spec(self, calibration_id: str) -> str | None:
+        with self._read() as db:
+            row = db.execute(
+                "SELECT spec FROM calibrations WHERE id = ?", (calibration_id,)
+            ).fetchone()
+        return None if row is None else str(row[0])
 
     def delete(self, calibration_id: str) -> bool:
         with self._write() as db:

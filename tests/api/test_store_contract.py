@@ -14,7 +14,7 @@ def make(store: Store, cid: str = "c1", proposals: int = 5) -> None:
         NewCalibration(
             id=cid,
             token_hash="h",
-            spec_json="{}",
+            spec_json='{"name": "s"}',
             created_at=1000.0,
             state_blob=b"\x00state\xff",
             round=0,
@@ -35,7 +35,8 @@ def test_create_and_read_back(store: Store) -> None:
     assert (meta.done, meta.failed, meta.leased, meta.queued) == (0, 0, 0, 5)
     assert meta.state_version == 1 and meta.engine_status == "collecting"
     assert store.load_state("c1") == (1, b"\x00state\xff")
-    assert store.get_meta("nope") is None
+    assert store.get_spec("c1") == '{"name": "s"}'
+    assert store.get_meta("nope") is None and store.get_spec("nope") is None
     assert store.load_state("nope") is None
 
 

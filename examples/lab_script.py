@@ -75,9 +75,15 @@ def main() -> int:
     parser.add_argument("--url", default="http://127.0.0.1:8750")
     parser.add_argument("--max-runs", type=int, default=SPEC["budget"]["max_runs"])
     args = parser.parse_args()
-    spec = {**SPEC, "budget": {"max_runs": args.max_runs}}
+    try:
+        return calibrate(args.url, {**SPEC, "budget": {"max_runs": args.max_runs}})
+    except httpx.TransportError as exc:
+        sys.exit(f"lab_script: cannot reach {args.url} ({type(exc).__name__}: {exc})")
 
-    with httpx.Client(base_url=args.url, timeout=30.0) as http:
+
+def calibrate(url: str, spec: dict[str, Any]) -> int:
+    """Create the calibration, evaluate leased points until it finishes, print the result."""
+    with httpx.Client(base_url=url, timeout=30.0) as http:
         created = check(http.post("/v1/calibrations", json=spec))
         cid = created["id"]
         http.headers["Authorization"] = f"Bearer {created['token']}"

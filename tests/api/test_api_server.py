@@ -171,3 +171,58 @@ def test_kill_9_loses_no_acknowledged_result(
     for run_id, outputs in acked.items():
         assert stored[run_id]["state"] == "done", run_id
         assert stored[run_id]["outputs"] == outputs
+
+
+# A refit worker whose engine call hangs after saying so, to be killed mid-fit.
+_HANGING_REFITTER = """
+import sys, threading, time
+from pathlib import Path
+import honing.api.refitter as refitter
+from honing.api.store import open_store
+
+def hang(*args, **kwargs):
+    Path(sys.argv[2]).write_text("fitting")
+    time.sleep(600)
+
+refitter.refit = hang
+refitter.Refitter(open_store(sys.argv[1]), lock_ttl=1.0).run_forever(threading.Event())
+"""
+
+
+def test_a_refit_worker_killed_mid_fit_is_retried(store_url: str, tmp_path: Path) -> None:
+    from honing.api.refitter import Refitter
+    from honing.api.service import CalibrationService
+    from honing.api.store import open_store
+
+    store = open_store(store_url)
+    service = CalibrationService(store)
+    calibration_id, _, _ = service.create(SPEC)
+    meta = service.meta(calibration_id)
+    for run in service.lease(meta, SPEC["design"]["initial_runs"], "w", 3600.0).runs:
+        service.report(meta, run["run_id"], simulate(run["parameters"]), None)
+    assert store.refit_queue_depth() == 1
+    marker = tmp_path / "fitting"
+    proc = subprocess.Popen(
+        [sys.executable, "-c", _HANGING_REFITTER, store_url, str(marker)],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    try:
+        deadline = time.monotonic() + START_WAIT
+        while not marker.exists():
+            assert proc.poll() is None and time.monotonic() < deadline, "worker never fitted"
+            time.sleep(0.05)
+    finally:
+        proc.kill()
+        proc.wait()
+    refitter = Refitter(store)
+    # The dead worker's lock lapses after its ttl; until then the job is "locked".
+    outcomes: list[str] = []
+    deadline = time.monotonic() + START_WAIT
+    while "written" not in outcomes:
+        assert time.monotonic() < deadline, outcomes
+        outcomes = refitter.step()
+        time.sleep(0.05)
+    assert service.state(service.meta(calibration_id)).round == 1
+    assert store.refit_queue_depth() == 0
+    store.close()

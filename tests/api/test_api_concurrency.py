@@ -1,5 +1,6 @@
 import random
 import threading
+import time
 from collections import Counter
 
 from helpers_api import SPEC, simulate
@@ -104,3 +105,55 @@ def test_concurrent_reports_of_one_run_agree(store: Store) -> None:
     counts = Counter(outcomes)
     assert counts["ConflictError"] == 8 and counts["same"] + counts["different"] == 8, counts
     assert service.meta(calibration_id).done == 1
+
+
+def test_expiring_leases_under_load_never_overlap(store: Store) -> None:
+    target = 400
+    service = CalibrationService(store)
+    design = {"initial_runs": target, "batch_size": 4}
+    calibration_id, _, _ = service.create({**SPEC, "design": design, "budget": {"max_runs": 10**4}})
+    errors: list[BaseException] = []
+    # Bounded run: the loop stops by itself; the assertions below do not depend on speed.
+    deadline = time.monotonic() + 120
+
+    def work(seed: int) -> None:
+        rng = random.Random(seed)
+        try:
+            while time.monotonic() < deadline:
+                meta = service.meta(calibration_id)
+                if meta.queued == 0 and meta.leased == 0:
+                    return  # every point handed out, and no lease outstanding
+                runs = service.lease(meta, rng.randint(1, 3), f"w{seed}", 0.5).runs
+                if not runs:
+                    time.sleep(0.02)
+                for run in runs:
+                    if rng.random() < 0.15:
+                        continue  # this worker "dies" with the lease: it must expire
+                    service.report(meta, run["run_id"], simulate(run["parameters"]), None)
+        except BaseException as exc:  # reported below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=work, args=(i,)) for i in range(THREADS)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not errors, errors[:3]
+    runs = store.list_runs(calibration_id)
+    by_point: dict[tuple, list] = {}
+    for r in runs:
+        by_point.setdefault(tuple(r.point["parameters"].values()), []).append(r)
+    done_points = {p for p, rs in by_point.items() if any(r.state == "done" for r in rs)}
+    # Round 0 proposes the initial design and one batch of spares: each got a result.
+    assert len(by_point) == target + 4 and done_points == set(by_point)
+    assert any(len(rs) > 1 for rs in by_point.values()), "some leases expired and came back"
+    for point_runs in by_point.values():
+        # seq is given inside the atomic lease step, so it is the order the leases happened in.
+        point_runs.sort(key=lambda r: r.seq)
+        for earlier in point_runs[:-1]:
+            # A point goes out again only after its earlier lease expired: epoch 2 when it is
+            # still "expired", epoch 3 when a late result came afterwards.
+            expired = (earlier.state, earlier.epoch) in {("expired", 2), ("done", 3)}
+            assert expired, earlier
+    meta = service.meta(calibration_id)
+    assert meta.done == sum(r.state == "done" for r in runs)

@@ -15,6 +15,7 @@ from typing import Any
 from urllib.parse import quote
 
 import httpx
+
 from honing.client.errors import (
     ConnectionFailed,
     ProblemError,

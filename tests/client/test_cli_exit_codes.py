@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+
 from honing.client.cli import main
 
 CAL = "/v1/calibrations/c1"

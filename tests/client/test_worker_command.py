@@ -5,6 +5,7 @@ import sys
 from pathlib import Path
 
 import pytest
+
 from honing.client.worker import STDERR_TAIL, run_command, substitute
 
 RUN = {"run_id": "r7", "parameters": {"velocity": 0.25, "k-sat.top": 1e-05, "n": 3}}

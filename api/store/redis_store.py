@@ -264,7 +264,13 @@ class RedisStore:
     def _guard(self) -> Iterator[None]:
         try:
             yield
-        except (redis.ConnectionError, redis.TimeoutError, redis.BusyLoadingError) as exc:
+        except (
+            redis.ConnectionError,
+            redis.TimeoutError,
+            redis.BusyLoadingError,
+            redis.ReadOnlyError,  # talking to a replica during a failover
+            redis.OutOfMemoryError,  # maxmemory reached under noeviction: writes refused
+        ) as exc:
             raise StoreUnavailable(f"redis unavailable: {exc}") from exc
 
     def ping(self) -> None:

@@ -74,3 +74,20 @@ def test_durability_warnings(
         assert durable.startup_warnings() == []
     finally:
         durable.close()
+
+
+def test_redis_out_of_memory_is_503_not_500(redis_url: str) -> None:
+    import redis
+
+    admin = redis.Redis.from_url(redis_url)
+    with make_client(Settings(store_url=redis_url)) as client:
+        cal = create(client)
+        admin.config_set("maxmemory", "1")  # under noeviction every write is now refused
+        try:
+            response = client.post(f"{cal.url}/runs", json={"count": 1}, headers=cal.headers)
+            assert_problem(response, 503)
+            assert "retry-after" in response.headers
+        finally:
+            admin.config_set("maxmemory", "0")
+            admin.close()
+        assert len(lease(client, cal)) == 1

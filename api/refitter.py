@@ -138,12 +138,15 @@ class Refitter:
         return self._outcome("written" if swapped else "stale")
 
     def run_forever(self, stop: threading.Event, poll: float = 0.5) -> None:
-        """Poll for due jobs until ``stop`` is set; store outages are logged and waited out."""
+        """Poll for due jobs until ``stop`` is set; store outages and errors are logged."""
         while not stop.is_set():
             try:
                 outcomes = self.step()
             except StoreUnavailable as exc:
                 log.warning("store unavailable", extra={"error": str(exc)})
+                outcomes = []
+            except Exception:  # a long-lived worker logs a bug and keeps serving other jobs
+                log.exception("refit loop error")
                 outcomes = []
             if not outcomes or all(o == "locked" for o in outcomes):
                 stop.wait(poll)

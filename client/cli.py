@@ -485,6 +485,11 @@ def _demo(args: argparse.Namespace) -> int:
     _out("")
     _out(posterior_table(summary, units=_units({"spec": spec}), truth=demo.TRUE_PARAMETERS))
     _out(diagnostics_line(summary))
+    if code == EXIT["budget_exhausted"]:
+        _out(
+            "The run budget was used before the convergence checks passed; the posterior "
+            "above uses every run, with the surrogate's error folded into its width."
+        )
     _out(f"report: {report}")
     _out(f"finished in {time.monotonic() - started:.0f} s")
     _out("The true values are known only because the data are synthetic. " + CAUTION)

@@ -303,3 +303,34 @@ def test_sigterm_is_handled_like_ctrl_c(fake_server: Any, tmp_path: Path) -> Non
     proc.communicate(timeout=120)
     assert proc.returncode == 143
     assert fake_server.bodies("PUT", f"{CAL}/runs/r1") == [{"outputs": {"y": [1.5]}}]
+
+
+def test_serve_without_the_server_extra_is_one_line(
+    monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # A None entry in sys.modules makes the import fail, as a missing extra would.
+    import honing.api
+
+    monkeypatch.setitem(sys.modules, "honing.api.server", None)
+    monkeypatch.delattr(honing.api, "server", raising=False)
+    assert main(["serve", "--store", "sqlite:////tmp/unused.db"]) == 1
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1
+    assert "pip install 'honing[server]'" in err
+
+
+def test_serve_passes_its_options_and_a_default_store(
+    monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
+    import types
+
+    calls: list[tuple] = []
+    fake = types.ModuleType("honing.api.server")
+    fake.run_server = lambda *a, **k: calls.append((a, k))  # type: ignore[attr-defined]
+    monkeypatch.setitem(sys.modules, "honing.api.server", fake)
+    monkeypatch.setattr("honing.api.server", fake, raising=False)
+    monkeypatch.setenv("XDG_DATA_HOME", str(tmp_path))
+    assert main(["serve", "--port", "9001", "--refit-workers", "2"]) == 0
+    ((args, kwargs),) = calls
+    assert args == ("127.0.0.1", 9001, f"sqlite:///{tmp_path}/honing/honing.db")
+    assert kwargs == {"admin_key_file": None, "refit_workers": 2}

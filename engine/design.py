@@ -6,7 +6,7 @@ product of U[-1, 1] and N(0, 1) factors.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 
 import numpy as np
 from scipy.stats import qmc
@@ -20,6 +20,12 @@ __all__ = ["DEFENSIVE_FRACTION", "initial_design", "select_batch"]
 DEFENSIVE_FRACTION = 0.1
 #: Widening of the posterior's Gaussian fit for the defensive draws, in posterior sd.
 DEFENSIVE_WIDEN = 3.0
+#: With a model of where the simulator fails: the success probability a pool draw needs to
+#: enter the spread part of a batch, and the one a defensive draw needs. Points the model is
+#: unsure of (between the two) are left to the defensive share, which so probes the boundary
+#: without spending runs where failure is near certain.
+LIKELY_SUCCESS = 0.9
+PROBE_SUCCESS = 0.1
 #: Candidates drawn from the posterior pool per point of a batch, for the max-min selection.
 OVERSAMPLE = 20
 #: Open interval the unit-cube design is clipped to before the inverse CDF.
@@ -60,6 +66,7 @@ def select_batch(
     families: Sequence[Family],
     rng: np.random.Generator,
     defensive_fraction: float = DEFENSIVE_FRACTION,
+    success: Callable[[np.ndarray], np.ndarray] | None = None,
 ) -> np.ndarray:
     """A batch of ``n`` points from the posterior pool, spread out, plus defensive draws.
 
@@ -78,6 +85,10 @@ def select_batch(
     families : sequence of {"legendre", "hermite"}
     rng : numpy.random.Generator
     defensive_fraction : float
+    success : callable, optional
+        Probability that the simulator succeeds at points, ``(n, dim) -> (n,)``. The spread
+        part is chosen among pool draws with at least `LIKELY_SUCCESS`, the defensive draws
+        among those with at least `PROBE_SUCCESS`.
 
     Returns
     -------
@@ -88,9 +99,14 @@ def select_batch(
     mean = pool.mean(axis=0)
     cov = np.cov(pool, rowvar=False).reshape(dim, dim) + 1e-12 * np.eye(dim)
     chol = np.linalg.cholesky(cov)
-    defensive = _widened_draws(mean, chol, n_defensive, families, rng)
-    m = min(pool.shape[0], OVERSAMPLE * n)
-    candidates = pool[rng.choice(pool.shape[0], m, replace=False)]
+    defensive = _widened_draws(mean, chol, n_defensive, families, rng, success)
+    eligible = pool
+    if success is not None:
+        likely = success(pool) >= LIKELY_SUCCESS
+        if np.count_nonzero(likely) >= n:
+            eligible = pool[likely]
+    m = min(eligible.shape[0], OVERSAMPLE * n)
+    candidates = eligible[rng.choice(eligible.shape[0], m, replace=False)]
     chosen = _max_min(candidates, n - n_defensive, np.vstack([existing, defensive]), chol)
     return np.vstack([chosen, defensive])
 
@@ -101,14 +117,20 @@ def _widened_draws(
     n: int,
     families: Sequence[Family],
     rng: np.random.Generator,
+    success: Callable[[np.ndarray], np.ndarray] | None,
 ) -> np.ndarray:
-    """Gaussian draws with `DEFENSIVE_WIDEN` times the posterior sd, inside the support."""
+    """Gaussian draws with `DEFENSIVE_WIDEN` times the posterior sd, inside the support, and
+    not where failure is near certain; after 100 tries, whatever the failure model says."""
     bounded = np.array([f == "legendre" for f in families])
     out = np.empty((0, mean.size))
+    tries = 0
     while out.shape[0] < n:
         x = mean + DEFENSIVE_WIDEN * rng.standard_normal((4 * n, mean.size)) @ chol.T
         x = x[np.all(~bounded | (np.abs(x) < 1.0), axis=1)]
+        if success is not None and tries < 100:
+            x = x[success(x) >= PROBE_SUCCESS]
         out = np.vstack([out, x])
+        tries += 1
     return out[:n]
 
 

@@ -17,7 +17,7 @@ from sklearn.linear_model import LogisticRegression
 __all__ = ["FailureModel"]
 
 #: Inverse regularisation strength of the logistic fit (scikit-learn's default).
-REGULARISATION_C = 1.0
+REGULARISATION_C = 10000.0
 #: Smallest success probability used in the log, so a point is never ruled out entirely.
 MIN_SUCCESS = 1e-6
 
@@ -32,12 +32,14 @@ class FailureModel:
     intercept: float
 
     @classmethod
-    def fit(cls, xi: np.ndarray, failed: np.ndarray) -> FailureModel | None:
-        """Fit on every run; None when no run failed (or none succeeded)."""
+    def fit(
+        cls, xi: np.ndarray, failed: np.ndarray, center: np.ndarray, scale: np.ndarray
+    ) -> FailureModel | None:
+        """Fit on every run, features standardised by the surrogate's local frame so that
+        the boundary can be sharp on the posterior's scale; None when no run failed (or
+        none succeeded)."""
         if not failed.any() or failed.all():
             return None
-        center = xi.mean(axis=0)
-        scale = np.maximum(xi.std(axis=0), 1e-9)
         features = _features((xi - center) / scale)
         model = LogisticRegression(C=REGULARISATION_C, max_iter=2000)
         model.fit(features, (~failed).astype(int))
@@ -48,6 +50,10 @@ class FailureModel:
         eta = _features((xi - self.center) / self.scale) @ self.coef + self.intercept
         # log(sigmoid(eta)) = -log(1 + exp(-eta)), computed stably.
         return np.maximum(-np.logaddexp(0.0, -eta), np.log(MIN_SUCCESS))
+
+    def success(self, xi: np.ndarray) -> np.ndarray:
+        """``P(success)`` at points, shape ``(n_points,)``."""
+        return np.exp(self.log_success(xi))
 
     def to_dict(self) -> dict[str, Any]:
         return {

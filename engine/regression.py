@@ -27,8 +27,9 @@ from __future__ import annotations
 
 import math
 import warnings
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import TypeVar
 
 import numpy as np
 from scipy import linalg
@@ -38,7 +39,15 @@ from sklearn.linear_model import lars_path
 from honing.engine.bases import PolynomialBasis, count_total_degree_indices, total_degree_indices
 from honing.engine.priors import Family
 
-__all__ = ["SparseFit", "fit_degree_adaptive", "fit_sparse", "loo_residuals"]
+__all__ = [
+    "SharedFit",
+    "SparseFit",
+    "fit_degree_adaptive",
+    "fit_degree_adaptive_shared",
+    "fit_shared_sparse",
+    "fit_sparse",
+    "loo_residuals",
+]
 
 #: A column whose part orthogonal to the columns before it is below this fraction of its norm
 #: is treated as linearly dependent on them. About sqrt(machine epsilon): a least-squares
@@ -95,6 +104,11 @@ class SparseFit:
     columns: np.ndarray
     coef: np.ndarray
     loo_error: float
+
+    @property
+    def loo_error_total(self) -> float:
+        """The error the degree search compares (for one target, `loo_error` itself)."""
+        return self.loo_error
 
 
 def _check_data(
@@ -468,16 +482,41 @@ def fit_degree_adaptive(
     if max_degree < 1:
         raise ValueError(f"max_degree must be at least 1, got {max_degree}")
     _, weights = _check_target(y, sample_weight, z.shape[0])
+    basis, fit = _degree_search(
+        z, families, max_degree, weights, q, max_terms, lambda phi: fit_sparse(phi, y, weights)
+    )
+    return basis.subset(fit.columns), SparseFit(
+        np.arange(fit.columns.size), fit.coef, fit.loo_error
+    )
+
+
+_Fit = TypeVar("_Fit", "SparseFit", "SharedFit")
+
+
+def _degree_search(
+    z: np.ndarray,
+    families: Sequence[Family],
+    max_degree: int,
+    weights: np.ndarray,
+    q: float,
+    max_terms: int,
+    fit: Callable[[np.ndarray], _Fit],
+) -> tuple[PolynomialBasis, _Fit]:
+    """Fit candidate bases of degree 1, 2, ... and keep the one of smallest error.
+
+    Stops at the first degree whose candidate set exceeds the size limit, or after
+    `DEGREE_PATIENCE` degrees without a new best.
+    """
     limit = min(max_terms, CANDIDATES_PER_SAMPLE * int(np.count_nonzero(weights > 0.0)))
-    best: tuple[PolynomialBasis, SparseFit] | None = None
+    best: tuple[PolynomialBasis, _Fit] | None = None
     since_best = 0
     for degree in range(1, max_degree + 1):
         if count_total_degree_indices(z.shape[1], degree, q) > limit:
             break
         basis = PolynomialBasis(total_degree_indices(z.shape[1], degree, q), families)
-        fit = fit_sparse(basis.design_matrix(z), y, weights)
-        if best is None or fit.loo_error < best[1].loo_error:
-            best, since_best = (basis, fit), 0
+        result = fit(basis.design_matrix(z))
+        if best is None or result.loo_error_total < best[1].loo_error_total:
+            best, since_best = (basis, result), 0
         else:
             since_best += 1
             if since_best == DEGREE_PATIENCE:
@@ -487,7 +526,197 @@ def fit_degree_adaptive(
             f"the degree-1 basis has {z.shape[1] + 1} terms, more than the {limit} allowed "
             f"(max_terms={max_terms}, {CANDIDATES_PER_SAMPLE} per sample of positive weight)"
         )
-    basis, fit = best
-    return basis.subset(fit.columns), SparseFit(
-        np.arange(fit.columns.size), fit.coef, fit.loo_error
+    return best
+
+
+@dataclass
+class SharedFit:
+    """A sparse least-squares fit of several targets on one shared set of columns.
+
+    Attributes
+    ----------
+    columns : ndarray of int, shape (n_active,)
+        Sorted selected columns; always contains 0, the constant.
+    coef : ndarray, shape (n_active, n_targets)
+    loo_error : ndarray, shape (n_targets,)
+        Corrected relative leave-one-out error of each target.
+    loo_error_total : float
+        The same for all targets together: summed squared leave-one-out residuals over
+        summed weighted variances, the quantity the selection minimises.
+    """
+
+    columns: np.ndarray
+    coef: np.ndarray
+    loo_error: np.ndarray
+    loo_error_total: float
+
+
+def fit_shared_sparse(
+    phi: np.ndarray, y: np.ndarray, sample_weight: np.ndarray | None = None
+) -> SharedFit:
+    """Weighted sparse least squares of several targets on one shared support.
+
+    Columns enter greedily by orthogonal least squares on the stacked targets: each step adds
+    the column whose part orthogonal to the active span most reduces the summed residual sum
+    of squares of all targets (simultaneous orthogonal matching pursuit). Every prefix is a
+    weighted least-squares fit of all targets at once; its corrected leave-one-out error
+    (the factor ``T(P, N)`` of `fit_sparse`) is summed over targets and the best prefix wins.
+    One path and one QR factorisation serve every target, so the cost is that of a single
+    fit, where `fit_sparse` per target would repeat the path for each.
+
+    Parameters
+    ----------
+    phi : ndarray, shape (n_samples, n_columns)
+        Candidate design; column 0 must be constant.
+    y : ndarray, shape (n_samples, n_targets)
+        Targets on a common scale (here: output components in noise units).
+    sample_weight : ndarray, shape (n_samples,), optional
+
+    Returns
+    -------
+    SharedFit
+
+    References
+    ----------
+    .. [1] J. A. Tropp, A. C. Gilbert, M. J. Strauss, "Algorithms for simultaneous sparse
+       approximation. Part I: Greedy pursuit", Signal Processing 86:572-588, 2006.
+    .. [2] S. Chen, S. A. Billings, W. Luo, "Orthogonal least squares methods and their
+       application to non-linear system identification", Int. J. Control 50:1873-1896, 1989.
+    .. [3] G. Blatman, B. Sudret, J. Comput. Phys. 230:2345-2367, 2011 (the corrected
+       leave-one-out error used to pick the prefix).
+    """
+    y = np.asarray(y, dtype=float)
+    if y.ndim != 2:
+        raise ValueError(f"y must have shape (n_samples, n_targets), got {y.shape}")
+    phi, _, weights = _check_data(phi, y[:, 0], sample_weight)
+    positive = weights > 0.0
+    n_samples = int(np.count_nonzero(positive))
+    if n_samples < 3:
+        raise ValueError(f"need at least 3 samples with positive weight, got {n_samples}")
+    weight_total = float(weights.sum())
+    root = np.sqrt(weights)
+    a = phi * root[:, None]
+    c = y * root[:, None]
+    mean = (weights @ y) / weight_total
+    spread = np.sum(((y - mean) * root[:, None]) ** 2, axis=0)
+    spread_total = float(spread.sum())
+    if spread_total == 0.0:
+        coef = (mean / phi[positive, 0][0])[None, :]
+        zeros = np.zeros(y.shape[1])
+        return SharedFit(np.array([0]), coef, zeros, 0.0)
+    n_cols = a.shape[1]
+    limit = min(n_samples - 3, n_cols - 1)
+    col_norm2 = np.einsum("ij,ij->j", a, a)
+    orth_norm2 = col_norm2.copy()
+    correlation = a.T @ c  # (n_cols, n_targets): columns against the current residual
+    q = np.zeros((a.shape[0], limit + 1))
+    r_inv = np.zeros((limit + 1, limit + 1))
+    qtc = np.zeros((limit + 1, y.shape[1]))
+    residual = c.copy()
+    leverage = np.zeros(a.shape[0])
+    available = np.ones(n_cols, dtype=bool)
+    active: list[int] = []
+    frobenius = 0.0
+    best = (0, np.inf, np.zeros(y.shape[1]))
+    since_best = 0
+    column = 0  # the constant enters first
+    while True:
+        k = len(active)
+        proj = q[:, :k].T @ a[:, column]
+        v = a[:, column] - q[:, :k] @ proj
+        v -= q[:, :k] @ (q[:, :k].T @ v)  # re-orthogonalise (Gram-Schmidt twice)
+        rho = float(np.linalg.norm(v))
+        available[column] = False
+        if rho <= DEPENDENCE_RTOL * math.sqrt(col_norm2[column]):
+            column = _next_column(correlation, orth_norm2, available)
+            if column < 0:
+                break
+            continue
+        q[:, k] = v / rho
+        # R grows by the column [proj; rho]; its inverse by [-R^-1 proj / rho; 1 / rho].
+        r_inv[:k, k] = -(r_inv[:k, :k] @ proj) / rho
+        r_inv[k, k] = 1.0 / rho
+        frobenius += float(r_inv[: k + 1, k] @ r_inv[: k + 1, k])
+        qtc[k] = q[:, k] @ c
+        residual -= np.outer(q[:, k], qtc[k])
+        leverage += q[:, k] ** 2
+        aq = a.T @ q[:, k]
+        correlation -= np.outer(aq, qtc[k])
+        orth_norm2 = np.maximum(orth_norm2 - aq**2, 0.0)
+        active.append(column)
+        deleted = _deleted(residual, np.broadcast_to(leverage[:, None], residual.shape))
+        trace = frobenius * weight_total / n_samples
+        factor = n_samples / (n_samples - (k + 1)) * (1.0 + trace)
+        per_target = np.maximum(np.sum(deleted**2, axis=0) * factor, EXACT_FIT_FLOOR)
+        total = max(float(per_target.sum()) / spread_total, EXACT_FIT_FLOOR)
+        if total < best[1]:
+            best, since_best = (k + 1, total, per_target), 0
+        else:
+            since_best += 1
+        if len(active) > limit or since_best >= _patience(best[0]):
+            break
+        column = _next_column(correlation, orth_norm2, available)
+        if column < 0:
+            break
+    size, total, per_target = best
+    coef = r_inv[:size, :size] @ qtc[:size]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        relative = np.where(spread > 0, per_target / spread, 0.0)
+    order = np.argsort(active[:size])
+    return SharedFit(np.asarray(active[:size])[order], coef[order], relative, total)
+
+
+def _next_column(correlation: np.ndarray, orth_norm2: np.ndarray, available: np.ndarray) -> int:
+    """The available column that most reduces the summed residual sum of squares; -1 if none."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        gain = np.where(
+            available & (orth_norm2 > 0), np.sum(correlation**2, axis=1) / orth_norm2, -1.0
+        )
+    best = int(np.argmax(gain))
+    return best if gain[best] > 0 else -1
+
+
+def fit_degree_adaptive_shared(
+    z: np.ndarray,
+    y: np.ndarray,
+    families: Sequence[Family],
+    max_degree: int,
+    sample_weight: np.ndarray | None = None,
+    q: float = 1.0,
+    max_terms: int = 4000,
+) -> tuple[PolynomialBasis, SharedFit]:
+    """`fit_shared_sparse` over candidate bases of increasing degree, as `fit_degree_adaptive`.
+
+    Parameters
+    ----------
+    z : ndarray, shape (n_samples, dim)
+    y : ndarray, shape (n_samples, n_targets)
+    families : sequence of {"legendre", "hermite"}, length dim
+    max_degree : int
+    sample_weight : ndarray, shape (n_samples,), optional
+    q : float
+    max_terms : int
+
+    Returns
+    -------
+    basis : PolynomialBasis
+        The selected terms, shape ``(n_active, dim)`` of indices.
+    fit : SharedFit
+        Its fit with ``columns = arange(n_active)`` into `basis`.
+    """
+    z = np.asarray(z, dtype=float)
+    if max_degree < 1:
+        raise ValueError(f"max_degree must be at least 1, got {max_degree}")
+    weights = np.ones(z.shape[0]) if sample_weight is None else np.asarray(sample_weight)
+    basis, fit = _degree_search(
+        z,
+        families,
+        max_degree,
+        weights,
+        q,
+        max_terms,
+        lambda phi: fit_shared_sparse(phi, y, weights),
+    )
+    return basis.subset(fit.columns), SharedFit(
+        np.arange(fit.columns.size), fit.coef, fit.loo_error, fit.loo_error_total
     )

@@ -156,16 +156,21 @@ def posterior_samples(
     return names, state.pool[: max(0, count)]
 
 
-def refit(spec: CalibrationSpec, state: EngineState, runs: RunTable) -> EngineState:
+def refit(
+    spec: CalibrationSpec, state: EngineState, runs: RunTable, *, widen: bool = True
+) -> EngineState:
     """The next round from every finished run, in completion order.
 
     Parameters
     ----------
     spec : CalibrationSpec
     state : EngineState
-        The latest state; its proposals carry the predictions used for validation.
+        The latest state.
     runs : RunTable
         Every finished run so far, failed ones included.
+    widen : bool
+        Add the surrogate's honest error to the noise variance (the default); False gives
+        the plain likelihood, for comparison.
 
     Returns
     -------
@@ -189,7 +194,9 @@ def refit(spec: CalibrationSpec, state: EngineState, runs: RunTable) -> EngineSt
         xi_all[kept], residuals, weights, Frame.local(xi_all[kept], weights), spec.max_degree
     )
     model_error = validation if validation is not None else _loo_error(surrogate, residuals)
-    failures = FailureModel.fit(xi_all, runs.failed)
+    if not widen:
+        model_error = 0.0
+    failures = FailureModel.fit(xi_all, runs.failed, surrogate.frame.center, surrogate.frame.scale)
     log_post = _log_posterior(spec, surrogate, families, model_error, failures)
 
     initial, laplace = _initial_walkers(spec, state, xi_all[kept], surrogate.frame, log_post, rng)
@@ -258,7 +265,8 @@ def refit(spec: CalibrationSpec, state: EngineState, runs: RunTable) -> EngineSt
         "prior_predictive": prior_predictive,
     }
 
-    batch_xi = select_batch(pool_xi, 2 * spec.batch_size, xi_all, families, rng)
+    success = None if failures is None else failures.success
+    batch_xi = select_batch(pool_xi, 2 * spec.batch_size, xi_all, families, rng, success=success)
     meta, arrays = surrogate.to_payload()
     return EngineState(
         round=state.round + 1,

@@ -4,8 +4,9 @@ Reference coordinates ``xi`` (see `honing.engine.priors`) are mapped affinely to
 coordinates ``z = (xi - center) / scale`` centred and scaled on the retained runs. A
 total-degree polynomial space is unchanged by an affine map, so the local frame costs nothing
 in what the surrogate can represent, and it keeps the design matrix well conditioned when the
-posterior is narrow and far from the prior's centre. Every component's sparse expansion is
-merged into one basis with a coefficient matrix, so a prediction costs one design matrix.
+posterior is narrow and far from the prior's centre. All components share one sparse set of
+terms chosen for their summed error, so a fit costs one selection path and a prediction one
+design matrix, whatever the number of components.
 """
 
 from __future__ import annotations
@@ -19,7 +20,7 @@ import numpy as np
 from honing.engine.bases import PolynomialBasis
 from honing.engine.likelihood import OutputReduction
 from honing.engine.priors import Family
-from honing.engine.regression import fit_degree_adaptive
+from honing.engine.regression import fit_degree_adaptive_shared
 
 __all__ = ["Frame", "Surrogate", "fit_surrogate"]
 
@@ -141,7 +142,7 @@ def fit_surrogate(
     frame: Frame,
     max_degree: int,
 ) -> Surrogate:
-    """Fit the reduction and one sparse expansion per component on weighted runs.
+    """Fit the reduction and a shared sparse expansion of the components on weighted runs.
 
     Parameters
     ----------
@@ -161,34 +162,20 @@ def fit_surrogate(
     """
     reduction = OutputReduction.fit(residuals, weights)
     targets = reduction.project(residuals)
-    z = frame.to_local(xi)
-    fits = [
-        fit_degree_adaptive(
-            z,
-            targets[:, j],
-            frame.families,
-            max_degree,
-            sample_weight=weights,
-            q=Q_NORM,
-            max_terms=MAX_CANDIDATE_TERMS,
-        )
-        for j in range(targets.shape[1])
-    ]
-    index_rows: dict[tuple[int, ...], int] = {}
-    for basis, _ in fits:
-        for row in basis.indices:
-            index_rows.setdefault(tuple(int(a) for a in row), len(index_rows))
-    indices = np.array(sorted(index_rows, key=lambda r: (sum(r), r)), dtype=np.int64)
-    position = {tuple(int(a) for a in row): i for i, row in enumerate(indices)}
-    coef = np.zeros((len(indices), len(fits)))
-    for j, (basis, fit) in enumerate(fits):
-        for row, c in zip(basis.indices, fit.coef, strict=True):
-            coef[position[tuple(int(a) for a in row)], j] = c
+    basis, fit = fit_degree_adaptive_shared(
+        frame.to_local(xi),
+        targets,
+        frame.families,
+        max_degree,
+        sample_weight=weights,
+        q=Q_NORM,
+        max_terms=MAX_CANDIDATE_TERMS,
+    )
     return Surrogate(
         frame=frame,
         reduction=reduction,
-        basis=PolynomialBasis(indices, frame.families),
-        coef=coef,
-        degree=int(indices.sum(axis=1).max()),
-        loo_error=np.array([fit.loo_error for _, fit in fits]),
+        basis=basis,
+        coef=fit.coef,
+        degree=basis.degree,
+        loo_error=fit.loo_error,
     )

@@ -1,3 +1,5 @@
+import itertools
+
 import numpy as np
 import pytest
 from scipy import stats
@@ -48,6 +50,6 @@ def test_kl_tolerance_covers_sampling_noise_between_fits():
 def test_trust_is_one_for_perfect_and_decreasing():
     values = [trust_from_error(e) for e in (0.0, 0.5, 1.0, 2.0, 4.0, 100.0)]
     assert values[0] == 1.0
-    assert all(a > b for a, b in zip(values[:-2], values[1:-1], strict=True))
+    assert all(a > b for a, b in itertools.pairwise(values[:-1]))
     assert 0 < values[-1] <= values[-2]
     assert trust_from_error(float("nan")) == values[-1]

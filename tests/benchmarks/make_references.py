@@ -37,7 +37,9 @@ BURN_TAU = 5
 KEEP = 8000
 
 
-def reference_chain(problem: Problem, seed: int) -> dict[str, np.ndarray]:
+def reference_chain(
+    problem: Problem, seed: int, tau_multiple: float = TAU_MULTIPLE
+) -> dict[str, np.ndarray]:
     spec = problem.spec
     data, sd = spec.data, spec.sd
     log_post = problem.log_posterior()
@@ -65,7 +67,7 @@ def reference_chain(problem: Problem, seed: int) -> dict[str, np.ndarray]:
         except emcee.autocorr.AutocorrError:
             tau = None
         steps = sampler.iteration
-        if tau is not None and steps >= TAU_MULTIPLE * tau.max():
+        if tau is not None and steps >= tau_multiple * tau.max():
             break
         if steps >= MAX_STEPS:
             raise RuntimeError(f"{problem.key}: chain not converged after {steps} steps")

@@ -27,9 +27,10 @@ MIN_RATIO = 10.0
 
 
 def _b3_reference(problem) -> Reference:
-    # A long emcee run on the full 5-mode model, from the mode (make_references.reference_chain:
-    # at least 100 autocorrelation times, checked by emcee's get_autocorr_time).
-    draws = reference_chain(problem, seed=77)["draws"]
+    # emcee on the full 5-mode model from its mode (make_references.reference_chain), stopped
+    # at emcee's own minimum of 50 autocorrelation times (get_autocorr_time raises below it):
+    # the error metric only needs the true model at posterior draws.
+    draws = reference_chain(problem, seed=77, tau_multiple=50)["draws"]
     return Reference(
         draws,
         draws.mean(0),
@@ -46,7 +47,8 @@ def test_adaptive_beats_global_at_equal_runs(which):
         problem = b2_nonlinear("concentrated", max_runs=40)
         ref = problem.reference()  # dense quadrature
     else:
-        problem = b3_elliptic("concentrated", 4.0, n_modes=5, max_runs=150)
+        # converges near 240 runs (measured); the budget is a cap that leaves a margin
+        problem = b3_elliptic("concentrated", 4.0, n_modes=5, max_runs=280)
         ref = _b3_reference(problem)
     draws, truth = error_draws(problem, ref)
     adaptive, _, _ = run_adaptive(problem, ref, draws, truth)

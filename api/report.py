@@ -26,12 +26,13 @@ from datetime import UTC, datetime
 from typing import Any
 
 import numpy as np
-from honing.engine.spec import CalibrationSpec, Observation, Parameter
-from honing.engine.state import EngineState
 from matplotlib.axes import Axes
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullFormatter
+
+from honing.engine.spec import CalibrationSpec, Observation, Parameter
+from honing.engine.state import EngineState
 
 __all__ = ["render_report"]
 

@@ -26,10 +26,11 @@ from typing import Any
 import numpy as np
 import pytest
 import websocket
+from PIL import Image
+
 from honing.api.report import render_report
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import EngineState
-from PIL import Image
 
 pytestmark = pytest.mark.browser
 

@@ -8,11 +8,12 @@ from typing import Any
 
 import numpy as np
 import pytest
+from PIL import Image
+
 from honing.api import report
 from honing.api.report import render_report
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import EngineState
-from PIL import Image
 
 # An invented scenario: a tank cooling towards room temperature, watched by two probes.
 HOSTILE_NAME = '<script>alert("x")</script> tank & "lid" $5'

@@ -20,7 +20,8 @@ __all__ = [
 ]
 
 #: Scale of the trust index, in noise units: a run whose outputs the surrogate predicted within
-#: an rms of one noise sd keeps trust exp(-1/8) ~ 0.88; at 2 sd, 0.61; at 6 sd, 0.011.
+#: an rms of one noise sd keeps trust 0.8; at 2 sd, 0.5; at 6 sd, 0.1; at 20 sd, 0.01. The
+#: slow (Cauchy-like) decay keeps a round of surprising runs from collapsing onto the floor.
 TRUST_SCALE = 2.0
 #: Trust never falls below this, so that a round whose every run surprised the surrogate
 #: still has a well-posed weighted fit.
@@ -37,12 +38,12 @@ CONVERGED_ROUNDS = 2
 def trust_from_error(rms_error: float) -> float:
     """Trust index of one run from the rms of (true - predicted) whitened residuals.
 
-    ``rho = max(exp(-e^2 / (2 TRUST_SCALE^2)), TRUST_FLOOR)``: 1 for a perfect prediction,
+    ``rho = max(1 / (1 + (e / TRUST_SCALE)^2), TRUST_FLOOR)``: 1 for a perfect prediction,
     tending to the floor as the discrepancy grows, in units of the noise sd.
     """
     if not np.isfinite(rms_error):
         return TRUST_FLOOR
-    return float(max(np.exp(-0.5 * (rms_error / TRUST_SCALE) ** 2), TRUST_FLOOR))
+    return float(max(1.0 / (1.0 + (rms_error / TRUST_SCALE) ** 2), TRUST_FLOOR))
 
 
 def gaussian_kl(m0: np.ndarray, s0: np.ndarray, m1: np.ndarray, s1: np.ndarray) -> float:

@@ -193,7 +193,8 @@ def refit(
     surrogate = fit_surrogate(
         xi_all[kept], residuals, weights, Frame.local(xi_all[kept], weights), spec.max_degree
     )
-    model_error = validation if validation is not None else _loo_error(surrogate, residuals)
+    typical = _typical_error(state, runs)
+    model_error = typical if typical is not None else _loo_error(surrogate, residuals)
     if not widen:
         model_error = 0.0
     failures = FailureModel.fit(xi_all, runs.failed, surrogate.frame.center, surrogate.frame.scale)
@@ -319,6 +320,18 @@ def _validation_error(state: EngineState, runs: RunTable) -> float | None:
     recent = runs.error[state.runs_at_fit :][~runs.failed[state.runs_at_fit :]]
     recent = recent[np.isfinite(recent)]
     return float(np.sqrt(np.mean(recent**2))) if recent.size else None
+
+
+def _typical_error(state: EngineState, runs: RunTable) -> float | None:
+    """Typical prediction error of the newest runs: the root of the median squared error.
+
+    The variance added to the likelihood should be the surrogate's error where the posterior
+    is; the mean would be dominated by the defensive draws, which lie by design three
+    posterior sd out, where the surrogate is expected to be worse.
+    """
+    recent = runs.error[state.runs_at_fit :][~runs.failed[state.runs_at_fit :]]
+    recent = recent[np.isfinite(recent)]
+    return float(np.sqrt(np.median(recent**2))) if recent.size else None
 
 
 def _loo_error(surrogate: Surrogate, residuals: np.ndarray) -> float:

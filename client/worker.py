@@ -14,6 +14,7 @@ handed out again).
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import os
@@ -368,17 +369,56 @@ def _wait(
 
 
 def _terminate(proc: subprocess.Popen[bytes]) -> None:
-    """SIGTERM to the command's process group, SIGKILL if it lingers."""
+    """SIGTERM to the command's process group, SIGKILL to whatever of it lingers.
+
+    The group outlives its leader when the command started children of its own, so the
+    whole group is waited for, not only the process we started.
+    """
     if proc.poll() is not None:
         return
     try:
         os.killpg(proc.pid, signal.SIGTERM)
-        proc.wait(timeout=KILL_GRACE)
-    except subprocess.TimeoutExpired:
-        os.killpg(proc.pid, signal.SIGKILL)
-        proc.wait()
     except ProcessLookupError:
         proc.wait()
+        return
+    deadline = time.monotonic() + KILL_GRACE
+    while _group_alive(proc) and time.monotonic() < deadline:
+        time.sleep(0.02)
+    if _group_alive(proc):
+        with contextlib.suppress(ProcessLookupError):
+            os.killpg(proc.pid, signal.SIGKILL)
+    proc.wait()
+    while _group_alive(proc) and time.monotonic() < deadline + KILL_GRACE:
+        time.sleep(0.02)
+
+
+def _group_alive(proc: subprocess.Popen[bytes]) -> bool:
+    """Whether any process of the command's group is still running (zombies excluded)."""
+    proc.poll()
+    try:
+        os.killpg(proc.pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return _group_has_live_member(proc.pid)
+
+
+def _group_has_live_member(pgid: int) -> bool:
+    """Scan /proc for a member of the group that is not a zombie; True where /proc is absent."""
+    proc_dir = Path("/proc")
+    if not proc_dir.is_dir():
+        return True
+    for entry in proc_dir.iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            fields = (entry / "stat").read_text().rsplit(")", 1)[1].split()
+        except (OSError, IndexError):
+            continue
+        if int(fields[2]) == pgid and fields[0] != "Z":
+            return True
+    return False
 
 
 def _read_outputs(path: Path) -> tuple[dict[str, list[float]] | None, str]:

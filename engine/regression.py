@@ -543,12 +543,19 @@ class SharedFit:
     loo_error_total : float
         The same for all targets together: summed squared leave-one-out residuals over
         summed weighted variances, the quantity the selection minimises.
+    loo_residuals : ndarray, shape (n_samples, n_targets)
+        Leave-one-out residuals of each sample and target, in the units of ``y`` (``inf``
+        where a sample has leverage 1 or zero weight).
+    correction : float
+        The factor ``T(P, N)`` of the selected set.
     """
 
     columns: np.ndarray
     coef: np.ndarray
     loo_error: np.ndarray
     loo_error_total: float
+    loo_residuals: np.ndarray
+    correction: float
 
 
 def fit_shared_sparse(
@@ -603,7 +610,7 @@ def fit_shared_sparse(
     if spread_total == 0.0:
         coef = (mean / phi[positive, 0][0])[None, :]
         zeros = np.zeros(y.shape[1])
-        return SharedFit(np.array([0]), coef, zeros, 0.0)
+        return SharedFit(np.array([0]), coef, zeros, 0.0, np.zeros_like(y), 1.0)
     n_cols = a.shape[1]
     limit = min(n_samples - 3, n_cols - 1)
     col_norm2 = np.einsum("ij,ij->j", a, a)
@@ -618,6 +625,7 @@ def fit_shared_sparse(
     active: list[int] = []
     frobenius = 0.0
     best = (0, np.inf, np.zeros(y.shape[1]))
+    best_deleted, best_factor = np.zeros_like(y), 1.0
     since_best = 0
     column = 0  # the constant enters first
     while True:
@@ -651,6 +659,7 @@ def fit_shared_sparse(
         total = max(float(per_target.sum()) / spread_total, EXACT_FIT_FLOOR)
         if total < best[1]:
             best, since_best = (k + 1, total, per_target), 0
+            best_deleted, best_factor = deleted, factor
         else:
             since_best += 1
         if len(active) > limit or since_best >= _patience(best[0]):
@@ -663,7 +672,11 @@ def fit_shared_sparse(
     with np.errstate(divide="ignore", invalid="ignore"):
         relative = np.where(spread > 0, per_target / spread, 0.0)
     order = np.argsort(active[:size])
-    return SharedFit(np.asarray(active[:size])[order], coef[order], relative, total)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        unscaled = np.where(positive[:, None], best_deleted / root[:, None], np.inf)
+    return SharedFit(
+        np.asarray(active[:size])[order], coef[order], relative, total, unscaled, best_factor
+    )
 
 
 def _next_column(correlation: np.ndarray, orth_norm2: np.ndarray, available: np.ndarray) -> int:
@@ -718,5 +731,10 @@ def fit_degree_adaptive_shared(
         lambda phi: fit_shared_sparse(phi, y, weights),
     )
     return basis.subset(fit.columns), SharedFit(
-        np.arange(fit.columns.size), fit.coef, fit.loo_error, fit.loo_error_total
+        np.arange(fit.columns.size),
+        fit.coef,
+        fit.loo_error,
+        fit.loo_error_total,
+        fit.loo_residuals,
+        fit.correction,
     )

@@ -193,8 +193,7 @@ def refit(
     surrogate = fit_surrogate(
         xi_all[kept], residuals, weights, Frame.local(xi_all[kept], weights), spec.max_degree
     )
-    typical = _typical_error(state, runs)
-    model_error = typical if typical is not None else _loo_error(surrogate, residuals)
+    model_error = _model_error(surrogate, kept >= state.runs_at_fit)
     if not widen:
         model_error = 0.0
     failures = FailureModel.fit(xi_all, runs.failed, surrogate.frame.center, surrogate.frame.scale)
@@ -322,26 +321,19 @@ def _validation_error(state: EngineState, runs: RunTable) -> float | None:
     return float(np.sqrt(np.mean(recent**2))) if recent.size else None
 
 
-def _typical_error(state: EngineState, runs: RunTable) -> float | None:
-    """Typical prediction error of the newest runs: the root of the median squared error.
+def _model_error(surrogate: Surrogate, newest: np.ndarray) -> float:
+    """Typical out-of-sample error of the new surrogate near the posterior, in noise units.
 
-    The variance added to the likelihood should be the surrogate's error where the posterior
-    is; the mean would be dominated by the defensive draws, which lie by design three
-    posterior sd out, where the surrogate is expected to be worse.
+    Each retained run's leave-one-out error (the fit without it predicting it) is honest out
+    of sample and refers to the surrogate about to be sampled, where the previous
+    surrogate's validation error lags a round behind and keeps early posteriors wide for
+    longer than needed. Taken over the runs finished since the last fit (the ones drawn from
+    the latest posterior; all retained runs at the first fit), as the root of the median
+    squared error, so that the defensive draws, far out by design, do not set it.
     """
-    recent = runs.error[state.runs_at_fit :][~runs.failed[state.runs_at_fit :]]
-    recent = recent[np.isfinite(recent)]
-    return float(np.sqrt(np.median(recent**2))) if recent.size else None
-
-
-def _loo_error(surrogate: Surrogate, residuals: np.ndarray) -> float:
-    """Rms surrogate error per value in noise units, from each component's leave-one-out error.
-
-    Used before any out-of-sample prediction exists (the first fit).
-    """
-    scores = surrogate.reduction.project(residuals)
-    mse = np.sum(surrogate.loo_error * scores.var(axis=0)) + surrogate.reduction.residual_energy
-    return float(np.sqrt(mse / residuals.shape[1]))
+    errors = surrogate.loo_rms[newest] if newest.any() else surrogate.loo_rms
+    errors = errors[np.isfinite(errors)]
+    return float(np.sqrt(np.median(errors**2))) if errors.size else 0.0
 
 
 def _log_posterior(

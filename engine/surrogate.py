@@ -12,7 +12,7 @@ design matrix, whatever the number of components.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -79,6 +79,10 @@ class Surrogate:
         Largest total degree selected for any component.
     loo_error : ndarray, shape (n_components,)
         Corrected leave-one-out relative error of each component's fit.
+    loo_rms : ndarray, shape (n_runs,)
+        Per fitted run, the rms over all outputs of its leave-one-out prediction error in
+        noise units (components times the correction factor, plus what the reduction drops).
+        Not serialised: it describes the fit's own runs.
     """
 
     frame: Frame
@@ -87,6 +91,7 @@ class Surrogate:
     coef: np.ndarray
     degree: int
     loo_error: np.ndarray
+    loo_rms: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
     @property
     def n_terms(self) -> int:
@@ -171,6 +176,8 @@ def fit_surrogate(
         q=Q_NORM,
         max_terms=MAX_CANDIDATE_TERMS,
     )
+    dropped = residuals - reduction.reconstruct(targets)
+    squared = fit.correction * np.sum(fit.loo_residuals**2, axis=1) + np.sum(dropped**2, axis=1)
     return Surrogate(
         frame=frame,
         reduction=reduction,
@@ -178,4 +185,5 @@ def fit_surrogate(
         coef=fit.coef,
         degree=basis.degree,
         loo_error=fit.loo_error,
+        loo_rms=np.sqrt(squared / residuals.shape[1]),
     )

@@ -1,11 +1,15 @@
 /*
- * Tracer pulse through a packed soil column: the C twin of honing.api.demo.simulate_column.
+ * Two-tracer pulse through a packed soil column: the C twin of
+ * honing.api.demo.simulate_tracer_test.
  *
- * 1-D advection-dispersion with linear sorption (retardation R) and first-order decay
- * (lambda, in both phases), D = dispersivity * v:
+ * Chloride (conservative) and a sorbing, decaying solute are fed together. Each follows 1-D
+ * advection-dispersion with linear sorption (retardation R) and first-order decay (lambda,
+ * in both phases), D = dispersivity * v:
  *
  *     dC/dt = (D/R) d2C/dx2 - (v/R) dC/dx - lambda C
  *
+ * chloride with R = 1 and lambda = 0, the solute with the given R and lambda: the same
+ * solver runs once per species.
  * First-type inlet C(0, t) = 1 while the pulse lasts, 0 after; dC/dx = 0 at the outlet.
  * Nodes every dx = L / CELLS, central differences, Crank-Nicolson steps with the inlet value
  * averaged over each step; each step solves the tridiagonal system by the Thomas algorithm.
@@ -14,7 +18,8 @@
  *   column VELOCITY DISPERSIVITY RETARDATION DECAY    writes the outputs JSON to stdout
  *   column                                            reads HONING_P_velocity, ... and
  *                                                     writes to $HONING_OUTPUTS (honing worker)
- * Units: m/d, m, -, 1/d. Output: {"probe_10cm": [...], "probe_20cm": [...], "probe_30cm": [...]},
+ * Units: m/d, m, -, 1/d. Output: {"chloride_10cm": [...], "chloride_20cm": [...],
+ * "chloride_30cm": [...], "solute_10cm": [...], "solute_20cm": [...], "solute_30cm": [...]},
  * C/C0 at t = 0.1, 0.2, ..., 2.0 d. Build: cc -O2 -o column column.c -lm
  */
 #include <errno.h>
@@ -30,9 +35,14 @@
 #define STEPS_PER_SAMPLE 50 /* samples every 0.1 d */
 #define SAMPLES 20
 #define PROBES 3
+#define SPECIES 2           /* chloride, then the solute */
+#define CHANNELS (SPECIES * PROBES)
 
 static const int probe_node[PROBES] = {50, 100, 150}; /* 0.10, 0.20, 0.30 m */
-static const char *probe_name[PROBES] = {"probe_10cm", "probe_20cm", "probe_30cm"};
+static const char *channel_name[CHANNELS] = {
+    "chloride_10cm", "chloride_20cm", "chloride_30cm",
+    "solute_10cm", "solute_20cm", "solute_30cm",
+};
 
 static int parse(const char *text, const char *what, double *out) {
     char *end;
@@ -49,13 +59,9 @@ static int parse(const char *text, const char *what, double *out) {
     return 1;
 }
 
-/* Fills out[PROBES][SAMPLES]; returns 0 on bad parameters. */
-static int simulate(double v, double alpha, double r, double lambda,
-                    double out[PROBES][SAMPLES]) {
-    if (!(v > 0 && alpha > 0 && r > 0 && lambda >= 0)) {
-        fprintf(stderr, "column: need velocity, dispersivity, retardation > 0 and decay >= 0\n");
-        return 0;
-    }
+/* One species: fills out[PROBES][SAMPLES] (parameters already checked). */
+static void simulate(double v, double alpha, double r, double lambda,
+                     double out[PROBES][SAMPLES]) {
     const int n = CELLS;
     const double dx = LENGTH / CELLS, h = 0.5 * TIME_STEP;
     const double a = alpha * v / (r * dx * dx), b = v / (2.0 * r * dx);
@@ -93,12 +99,11 @@ static int simulate(double v, double alpha, double r, double lambda,
         if (k % STEPS_PER_SAMPLE == 0)
             for (int p = 0; p < PROBES; p++) out[p][k / STEPS_PER_SAMPLE - 1] = u[probe_node[p] - 1];
     }
-    return 1;
 }
 
 int main(int argc, char **argv) {
     static const char *names[4] = {"velocity", "dispersivity", "retardation", "decay"};
-    double p[4], out[PROBES][SAMPLES];
+    double p[4], out[CHANNELS][SAMPLES];
     const char *path = NULL;
     if (argc == 5) {
         for (int i = 0; i < 4; i++)
@@ -114,15 +119,20 @@ int main(int argc, char **argv) {
         fprintf(stderr, "usage: column [VELOCITY DISPERSIVITY RETARDATION DECAY]\n");
         return 2;
     }
-    if (!simulate(p[0], p[1], p[2], p[3], out)) return 2;
+    if (!(p[0] > 0 && p[1] > 0 && p[2] > 0 && p[3] >= 0)) {
+        fprintf(stderr, "column: need velocity, dispersivity, retardation > 0 and decay >= 0\n");
+        return 2;
+    }
+    simulate(p[0], p[1], 1.0, 0.0, out);           /* chloride: rows 0 .. PROBES - 1 */
+    simulate(p[0], p[1], p[2], p[3], out + PROBES); /* the solute: the next PROBES rows */
     FILE *f = path ? fopen(path, "w") : stdout;
     if (f == NULL) {
         fprintf(stderr, "column: cannot write %s: %s\n", path, strerror(errno));
         return 1;
     }
     fputc('{', f);
-    for (int q = 0; q < PROBES; q++) {
-        fprintf(f, "%s\"%s\": [", q ? ", " : "", probe_name[q]);
+    for (int q = 0; q < CHANNELS; q++) {
+        fprintf(f, "%s\"%s\": [", q ? ", " : "", channel_name[q]);
         for (int j = 0; j < SAMPLES; j++) fprintf(f, "%s%.17g", j ? ", " : "", out[q][j]);
         fputc(']', f);
     }

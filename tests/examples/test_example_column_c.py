@@ -35,7 +35,7 @@ def test_c_model_agrees_with_the_python_solver(column_binary: Path, point: dict)
     outputs = run_c(column_binary, point)
     assert list(outputs) == list(demo.OBSERVATIONS)
     with threadpool_limits(1):
-        expected = demo.simulate_column(**point)
+        expected = demo.simulate_tracer_test(**point)
     assert_allclose(np.array([outputs[k] for k in demo.OBSERVATIONS]), expected, atol=ROUNDING)
 
 

@@ -79,13 +79,42 @@ def test_solver_matches_ogata_banks_and_converges_at_second_order(case: str) -> 
 
 
 def test_demo_grid_error_is_small_against_the_stated_sd() -> None:
-    # Demo grid (dx = 2 mm, dt = 0.002 d) against a 4x finer one at the true parameters.
+    # Demo grid (dx = 2 mm, dt = 0.002 d) against a 4x finer one at the true parameters, for
+    # both species (chloride, unretarded, has the sharper curves).
     p = demo.TRUE_PARAMETERS
     with threadpool_limits(1):
-        base = demo.simulate_column(**p)
-        fine = demo.simulate_column(**p, cells=4 * demo.CELLS, time_step=demo.TIME_STEP / 4)
-    grid_error = np.abs(base - fine).max()
-    assert grid_error < 0.3 * demo.SD_FLOOR, grid_error
+        base = demo.simulate_tracer_test(**p)
+        fine = demo.simulate_tracer_test(**p, cells=4 * demo.CELLS, time_step=demo.TIME_STEP / 4)
+    grid_error = np.abs(base - fine).max(axis=1)
+    assert (grid_error < 0.3 * demo.SD_FLOOR).all(), grid_error
+
+
+def test_chloride_is_the_conservative_limit_of_the_same_solver() -> None:
+    p = demo.TRUE_PARAMETERS
+    with threadpool_limits(1):
+        both = demo.simulate_tracer_test(**p)
+        chloride = demo.simulate_column(p["velocity"], p["dispersivity"], 1.0, 0.0)
+        solute = demo.simulate_column(**p)
+        other = demo.simulate_tracer_test(p["velocity"], p["dispersivity"], 2.5, 0.9)
+    assert both.shape == (len(demo.OBSERVATIONS), len(demo.SAMPLE_TIMES))
+    assert_allclose(both[:3], chloride, rtol=0, atol=0)
+    assert_allclose(both[3:], solute, rtol=0, atol=0)
+    # Retardation and decay act on the solute only.
+    assert_allclose(other[:3], chloride, rtol=0, atol=0)
+
+
+def test_chloride_separates_velocity_from_retardation() -> None:
+    # The solute's equation divided by R depends on v and R only through v / R (and the
+    # dispersivity and decay), so doubling both leaves its curves unchanged: alone it cannot
+    # identify them. Chloride (R = 1) moves with v itself and tells the two points apart.
+    p = demo.TRUE_PARAMETERS
+    doubled = {**p, "velocity": 2 * p["velocity"], "retardation": 2 * p["retardation"]}
+    with threadpool_limits(1):
+        base = demo.simulate_tracer_test(**p)
+        twin = demo.simulate_tracer_test(**doubled)
+    assert_allclose(twin[3:], base[3:], rtol=0, atol=1e-12)
+    # The chloride curves then differ by many times the stated sd.
+    assert np.abs(twin[:3] - base[:3]).max() > 50 * demo.SD_FLOOR
 
 
 def test_mass_balance_of_the_pulse_without_decay() -> None:
@@ -154,7 +183,8 @@ def test_demo_spec_is_valid_and_files_agree(examples: Path) -> None:
     spec = demo.demo_spec()
     parsed = CalibrationSpec.from_dict(spec)
     assert parsed.names == ["velocity", "dispersivity", "retardation", "decay"]
-    assert parsed.output_size == 60
+    assert parsed.output_size == 120
+    assert [o.name for o in parsed.observations] == list(demo.OBSERVATIONS)
     toml_spec = tomllib.loads((examples / "column_demo.toml").read_text())
     assert toml_spec == spec
     assert json.loads((examples / "column_demo.json").read_text()) == spec
@@ -173,7 +203,7 @@ def test_simulate_entry_follows_the_worker_protocol(
     monkeypatch.setenv("HONING_OUTPUTS", str(outputs))
     with threadpool_limits(1):
         assert demo.main(["simulate"]) == 0
-        expected = demo.simulate_column(**demo.TRUE_PARAMETERS)
+        expected = demo.simulate_tracer_test(**demo.TRUE_PARAMETERS)
     written = json.loads(outputs.read_text())
     assert list(written) == list(demo.OBSERVATIONS)
     assert_allclose([written[k] for k in demo.OBSERVATIONS], expected, rtol=0, atol=0)

@@ -56,8 +56,12 @@ PRIOR_DRAWS = 4000
 #: Posterior draws pushed through the surrogate for the predictive bands.
 PREDICTIVE_DRAWS = 400
 #: Share of a channel's data points outside the prior-predictive 95% band above which the
-#: prior is reported as unable to explain the data (5% are expected outside by chance).
-PRIOR_MISS_SHARE = 0.1
+#: prior is reported as unable to explain the data. 5% are expected outside by chance, more
+#: when the band's edges are order statistics of a few tens of initial runs (the extreme
+#: ones of 30 runs cover only about 94% between them), and noise adds a few near-edge points:
+#: a quarter outside is well past all of that, while a prior that cannot explain the data
+#: typically leaves most points outside.
+PRIOR_MISS_SHARE = 0.25
 #: Histogram bins for the prior-to-posterior divergence of each marginal.
 KL_BINS = 40
 

@@ -191,9 +191,9 @@ def build_parser() -> argparse.ArgumentParser:
         "demo",
         "calibrate a synthetic tracer-column model end to end",
         "Start a server in this process on a free port with a temporary store, calibrate a "
-        "packed soil column model (tracer pulse, three probes; invented data with known true "
-        "values) with a local worker, then print the posterior beside the true values and "
-        "write the HTML report.",
+        "packed soil column model (a chloride tracer and a sorbing, decaying solute pulsed in "
+        "together, three probes; invented data with known true values) with a local worker, "
+        "then print the posterior beside the true values and write the HTML report.",
     )
     p.add_argument("-j", "--jobs", type=int, default=2, help="runs at once (default: 2)")
     p.add_argument(

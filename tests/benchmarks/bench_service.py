@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import collections
 import math
 import os
 import platform
@@ -353,6 +354,7 @@ class SoakResult:
     trips: list[float] = field(default_factory=list)
     requests: list[float] = field(default_factory=list)
     errors: int = 0
+    reasons: collections.Counter[str] = field(default_factory=collections.Counter)
     late_starts: list[float] = field(default_factory=list)
     rounds: list[str] = field(default_factory=list)
 
@@ -386,6 +388,7 @@ async def soak(
                     runs = leased.json()["runs"] if leased.status_code == 200 else []
                     if not runs:
                         out.errors += 1
+                        out.reasons[f"lease {leased.status_code}: {leased.text[:200]}"] += 1
                         continue
                     reported = await http.put(
                         f"{target.runs_url}/{runs[0]['run_id']}",
@@ -395,9 +398,11 @@ async def soak(
                     end = loop.time()
                     if reported.status_code != 200:
                         out.errors += 1
+                        out.reasons[f"report {reported.status_code}: {reported.text[:200]}"] += 1
                         continue
-                except httpx.HTTPError:
+                except httpx.HTTPError as exc:
                     out.errors += 1
+                    out.reasons[f"{type(exc).__name__}: {exc}"] += 1
                     continue
                 out.requests += [mid - began, end - mid]
                 out.trips.append(end - began)
@@ -635,6 +640,8 @@ def main() -> None:
             f"{verdict(p99 < TARGET_SOAK_P99_MS)} |"
         )
         print(f"| soak errors = 0 | {soaked.errors} | {verdict(soaked.errors == 0)} |")
+        for reason, count in soaked.reasons.most_common():
+            print(f"\nsoak error x {count}: {reason}")
 
 
 if __name__ == "__main__":

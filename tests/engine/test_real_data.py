@@ -93,6 +93,33 @@ def test_unknown_noise_scale_is_recovered_and_matches_emcee():
 
 
 @pytest.mark.slow
+def _calibrate_with_failures(seed, x, y, sd, limit):
+    """Run the loop on a simulator that fails for a > limit; the loop and its spec."""
+    spec = _spec(
+        [
+            {"name": "a", "prior": {"kind": "uniform", "low": 0.5, "high": 4.0}},
+            {"name": "b", "prior": {"kind": "uniform", "low": 0.1, "high": 2.0}},
+        ],
+        [{"name": "y", "values": y.tolist(), "sd": sd}],
+        design={"initial_runs": 16, "batch_size": 8},
+        budget={"max_runs": 100},
+        seed=seed,
+    )
+    loop = CalibrationLoop(spec)
+    while loop.status == "collecting":
+        batch = loop.ask(4)
+        if not batch:
+            break
+        for p in batch:
+            values = spec.parameters_dict(p.theta)
+            if values["a"] > limit:
+                loop.tell(p.point_id, error="solver diverged")
+            else:
+                loop.tell(p.point_id, outputs={"y": _line((values["a"], values["b"]), x).tolist()})
+    return loop
+
+
+@pytest.mark.slow
 def test_failing_region_is_avoided_and_given_no_mass():
     x = np.linspace(0.0, 2.0, 10)
     sd = 0.05
@@ -102,41 +129,6 @@ def test_failing_region_is_avoided_and_given_no_mass():
     # so the cut moves the mean by half an sd and narrows it by a quarter.
     limit = 1.92
 
-    def simulate(p):
-        if p["a"] > limit:
-            raise RuntimeError("solver diverged")
-        return {"y": _line((p["a"], p["b"]), x).tolist()}
-
-    spec = _spec(
-        [
-            {"name": "a", "prior": {"kind": "uniform", "low": 0.5, "high": 4.0}},
-            {"name": "b", "prior": {"kind": "uniform", "low": 0.1, "high": 2.0}},
-        ],
-        [{"name": "y", "values": y.tolist(), "sd": sd}],
-        design={"initial_runs": 16, "batch_size": 8},
-        budget={"max_runs": 100},
-        seed=7,
-    )
-    loop = CalibrationLoop(spec)
-    while loop.status == "collecting":
-        batch = loop.ask(4)
-        if not batch:
-            break
-        for p in batch:
-            try:
-                loop.tell(p.point_id, outputs=simulate(spec.parameters_dict(p.theta)))
-            except RuntimeError as exc:
-                loop.tell(p.point_id, error=str(exc))
-    assert loop.state.summary["diagnostics"]["failed_fraction"] > 0
-    proposals = loop.state.proposals
-    # The batch is its spread part, then the defensive share (design.DEFENSIVE_FRACTION),
-    # which probes the boundary on purpose: the spread part must keep off the failing region,
-    # and no more than the defensive share may fall in it.
-    n_defensive = round(DEFENSIVE_FRACTION * proposals.shape[0])
-    inside = proposals[:, 0] > limit
-    assert np.mean(inside[:-n_defensive]) < 0.05
-    assert np.mean(inside) <= DEFENSIVE_FRACTION
-
     # Reference: quadrature of prior x likelihood with zero mass where the simulator fails.
     def logp(a, b):
         resid = (a[..., None] * np.exp(-b[..., None] * x) - y) / sd
@@ -144,9 +136,24 @@ def test_failing_region_is_avoided_and_given_no_mass():
         return np.where(a > limit, -np.inf, lp)
 
     mean, sdev = _grid_moments(logp, np.linspace(1.6, limit, 801), np.linspace(0.5, 1.1, 801))
-    got = loop.state.pool
-    np.testing.assert_array_less(np.abs(got.mean(0) - mean) / sdev, MEAN_TOL_SD)
-    np.testing.assert_allclose(got.std(0), sdev, rtol=SD_REL_TOL)
+    spread_inside, all_inside = [], []
+    # Three calibrations: one batch holds only a dozen spread points, so one point decides
+    # 7%; the shares are judged over all three batches together.
+    for seed in (6, 7, 8):
+        loop = _calibrate_with_failures(seed, x, y, sd, limit)
+        assert loop.state.summary["diagnostics"]["failed_fraction"] > 0
+        got = loop.state.pool
+        np.testing.assert_array_less(np.abs(got.mean(0) - mean) / sdev, MEAN_TOL_SD)
+        np.testing.assert_allclose(got.std(0), sdev, rtol=SD_REL_TOL)
+        # A batch is its spread part, then the defensive share (design.DEFENSIVE_FRACTION),
+        # which probes the boundary on purpose.
+        proposals = loop.state.proposals
+        n_defensive = round(DEFENSIVE_FRACTION * proposals.shape[0])
+        inside = proposals[:, 0] > limit
+        spread_inside.extend(inside[:-n_defensive])
+        all_inside.extend(inside)
+    assert np.mean(spread_inside) < 0.05
+    assert np.mean(all_inside) <= DEFENSIVE_FRACTION
 
 
 def _pulses(theta, t, centres):

@@ -1,0 +1,62 @@
+import numpy as np
+import pytest
+from scipy import integrate, stats
+
+from honing.engine.likelihood import OutputReduction, log_likelihood, noise_scale_draws
+
+
+def _residuals(seed, n=120, size=2000, rank=6):
+    rng = np.random.default_rng(seed)
+    return rng.normal(size=(n, rank)) @ rng.normal(size=(rank, size)), rng.uniform(0.1, 1, n)
+
+
+def test_components_match_numpy_svd():
+    x, w = _residuals(0)
+    red = OutputReduction.fit(x, w)
+    # Reference: numpy.linalg.svd of the weighted, centred matrix.
+    wn = w / w.sum()
+    centred = (x - wn @ x) * np.sqrt(wn)[:, None]
+    _, s, vt = np.linalg.svd(centred, full_matrices=False)
+    k = red.n_components
+    assert k == 6  # the rank of the planted residuals
+    # Components agree up to sign; rounding of the Gram route is ~1e-12 relative here.
+    overlap = np.abs(np.sum(vt[:k] * red.components.T, axis=1))
+    np.testing.assert_allclose(overlap, 1.0, atol=1e-9)
+    np.testing.assert_allclose(red.components.T @ red.components, np.eye(k), atol=1e-12)
+    assert red.residual_energy == pytest.approx(np.sum(s[k:] ** 2), abs=1e-8)
+
+
+def test_misfit_from_scores_equals_full_sum_of_squares():
+    x, w = _residuals(1)
+    red = OutputReduction.fit(x, w)
+    points = x[:10] + 0.1  # any residual vectors in the span, shifted off the mean
+    scores = red.project(points)
+    # With nothing dropped (residual_energy ~ 0), ||mean + V c||^2 is the full sum.
+    expected = np.sum(red.reconstruct(scores) ** 2, axis=1)
+    np.testing.assert_allclose(red.misfit(scores), expected, rtol=1e-10)
+
+
+def test_noise_scale_marginal_matches_numerical_integral():
+    # ∫ s^-N exp(-m / (2 s^2)) ds / s, by scipy.integrate.quad, against m^(-N/2) up to a
+    # constant: the ratio between two misfits must agree.
+    n = 12
+
+    def marginal(m):
+        value, _ = integrate.quad(lambda s: s ** (-n - 1) * np.exp(-m / (2 * s**2)), 0, np.inf)
+        return np.log(value)
+
+    m1, m2 = 7.0, 19.0
+    ours = log_likelihood(np.array([m1, m2]), n, estimate_noise=True)
+    assert ours[0] - ours[1] == pytest.approx(marginal(m1) - marginal(m2), rel=1e-8)
+    fixed = log_likelihood(np.array([m1]), n, estimate_noise=False)
+    assert fixed[0] == -0.5 * m1
+
+
+def test_noise_scale_draws_follow_inverse_gamma():
+    # s^2 | misfit ~ InvGamma(N/2, scale misfit/2) (Gelman et al., BDA3, sect. 3.2);
+    # Kolmogorov-Smirnov against scipy.stats.invgamma at a 1e-3 significance level.
+    rng = np.random.default_rng(2)
+    n, m = 30, 45.0
+    s = noise_scale_draws(np.full(20_000, m), n, rng)
+    result = stats.kstest(s**2, stats.invgamma(a=n / 2, scale=m / 2).cdf)
+    assert result.pvalue > 1e-3

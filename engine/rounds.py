@@ -572,6 +572,8 @@ def _json_safe(value: Any) -> Any:
     if isinstance(value, list | tuple):
         return [_json_safe(v) for v in value]
     if isinstance(value, np.ndarray):
+        if value.dtype.kind == "f" and np.isfinite(value).all():
+            return value.tolist()  # the common case, without a pass per element
         return _json_safe(value.tolist())
     if isinstance(value, np.floating | float):
         f = float(value)

@@ -87,14 +87,16 @@ def start(spec: CalibrationSpec) -> EngineState:
     xi = initial_design(families, spec.initial_runs + spec.batch_size, rng)
     proposals = _to_physical(spec, xi)
     prior = np.column_stack([p.prior.sample(rng, PRIOR_DRAWS) for p in spec.parameters])
+    # The prior's MAP: its highest-density draw, as the posterior's is (a flat prior has no
+    # unique mode; any draw is one).
+    density = sum(p.prior.logpdf(prior[:, i]) for i, p in enumerate(spec.parameters))
+    mode = prior[int(np.argmax(density))]
     summary = {
         "round": 0,
         "runs_completed": 0,
         "status": "collecting",
         "parameters": {
-            p.name: parameter_summary(
-                prior[:, i], float(p.prior.ppf(np.array([0.5]))[0]), p.prior.sd
-            )
+            p.name: parameter_summary(prior[:, i], float(mode[i]), p.prior.sd)
             for i, p in enumerate(spec.parameters)
         },
         "correlation": np.corrcoef(prior, rowvar=False).reshape(spec.dim, spec.dim).tolist(),
@@ -509,13 +511,11 @@ def _prior_predictive(
     first = runs.outputs[: spec.initial_runs][~runs.failed[: spec.initial_runs]]
     measured = first + spec.sd * rng.standard_normal(first.shape)
     bands = _bands(spec, first, measured)
-    start = 0
     for obs in spec.observations:
         band = bands[obs.name]
         outside = (obs.values < band["lo95"]) | (obs.values > band["hi95"])
         band["uncovered"] = int(outside.sum())
         del band["mean"]
-        start += obs.size
     return bands
 
 

@@ -9,6 +9,7 @@ to a few weighted principal components of the retained runs' residuals, so the s
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -120,9 +121,16 @@ class OutputReduction:
         With orthonormal components, ``||mean + V c||^2 = ||V^T mean + c||^2 + ||(I - V V^T)
         mean||^2``; the energy the components miss is added as its mean over the runs.
         """
+        offset, constant = self._misfit_terms
+        return np.sum((scores + offset) ** 2, axis=1) + constant
+
+    @cached_property
+    def _misfit_terms(self) -> tuple[np.ndarray, float]:
+        """``V^T mean`` and the constant part of the misfit, computed once: the sampler calls
+        `misfit` thousands of times, and each would otherwise cost ``O(output_size)``."""
         offset = self.mean @ self.components
         outside = float(self.mean @ self.mean - offset @ offset)
-        return np.sum((scores + offset) ** 2, axis=1) + outside + self.residual_energy
+        return offset, outside + self.residual_energy
 
     def to_payload(self, prefix: str) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
         return (

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import logging
 import multiprocessing
+import os
 import signal
 import socket
 import threading
@@ -29,8 +30,16 @@ log = logging.getLogger("honing.api.server")
 START_TIMEOUT = 30.0
 
 
-def run_refitter(store_url: str, log_level: str = "info") -> None:
-    """Run refit jobs of the store until SIGTERM or SIGINT (a standalone worker process)."""
+#: How often a refit worker started by `run_server` checks that the server still runs.
+PARENT_POLL_SECONDS = 1.0
+
+
+def run_refitter(store_url: str, log_level: str = "info", parent_pid: int | None = None) -> None:
+    """Run refit jobs of the store until SIGTERM or SIGINT (a standalone worker process).
+
+    With `parent_pid` (a worker of `run_server`), also stop once that process is gone, so a
+    server killed outright leaves no refit worker behind.
+    """
     configure_logging(log_level)
     stop = threading.Event()
 
@@ -39,12 +48,24 @@ def run_refitter(store_url: str, log_level: str = "info") -> None:
 
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
+    if parent_pid is not None:
+        threading.Thread(
+            target=_stop_when_orphaned, args=(parent_pid, stop), name="parent-watch", daemon=True
+        ).start()
     store = open_store(store_url)
     log.info("refit worker started", extra={"store": store.kind})
     try:
         Refitter(store).run_forever(stop)
     finally:
         store.close()
+
+
+def _stop_when_orphaned(parent_pid: int, stop: threading.Event) -> None:
+    """Set `stop` once this process's parent is no longer `parent_pid`."""
+    while not stop.wait(PARENT_POLL_SECONDS):
+        if os.getppid() != parent_pid:
+            log.warning("the serving process is gone; refit worker stopping")
+            stop.set()
 
 
 def run_server(
@@ -66,7 +87,7 @@ def run_server(
     workers = [
         context.Process(
             target=run_refitter,
-            args=(store_url, settings.log_level),
+            args=(store_url, settings.log_level, os.getpid()),
             name=f"honing-refitter-{i}",
         )
         for i in range(refit_workers)

@@ -226,3 +226,42 @@ def test_a_refit_worker_killed_mid_fit_is_retried(store_url: str, tmp_path: Path
     assert service.state(service.meta(calibration_id)).round == 1
     assert store.refit_queue_depth() == 0
     store.close()
+
+
+def test_refit_workers_exit_when_the_server_is_killed_outright(
+    sqlite_url: str, unused_port: Callable[[], int], tmp_path: Path
+) -> None:
+    port = unused_port()
+    with api_process(sqlite_url, port, tmp_path / "server.log", refit_workers=1) as proc:
+        children = _children(proc.pid)
+        assert children, "run_server started no refit worker"
+        # SIGKILL to the server alone (not its group): nothing of it can clean up.
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait()
+        # Bounded wait: the worker polls its parent every PARENT_POLL_SECONDS (1 s).
+        deadline = time.monotonic() + 20
+        while any(_alive(pid) for pid in children) and time.monotonic() < deadline:
+            time.sleep(0.1)
+        assert not any(_alive(pid) for pid in children)
+
+
+def _children(pid: int) -> list[int]:
+    """Pids whose parent is `pid`, read from /proc (Linux)."""
+    out = []
+    for entry in Path("/proc").iterdir():
+        if entry.name.isdigit():
+            try:
+                fields = (entry / "stat").read_text().rsplit(")", 1)[1].split()
+            except OSError:
+                continue
+            if int(fields[1]) == pid:
+                out.append(int(entry.name))
+    return out
+
+
+def _alive(pid: int) -> bool:
+    try:
+        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except OSError:
+        return False
+    return state != "Z"

@@ -17,7 +17,7 @@ from honing.engine.diagnostics import trust_from_error
 from honing.engine.errors import ConflictError, SpecError
 from honing.engine.rounds import prediction_error, refit, refit_due, start
 from honing.engine.spec import CalibrationSpec
-from honing.engine.state import EngineState, RunTable, state_from_bytes, state_to_bytes
+from honing.engine.state import EngineState, RunTable
 
 __all__ = ["CalibrationLoop", "Proposal"]
 
@@ -44,7 +44,7 @@ class CalibrationLoop:
     ----------
     spec : CalibrationSpec
     state : EngineState, optional
-        A state to resume from (see `dump` and `load`).
+        A state to resume from (see `honing.engine.state.state_from_bytes`).
     """
 
     def __init__(self, spec: CalibrationSpec, state: EngineState | None = None) -> None:
@@ -131,14 +131,6 @@ class CalibrationLoop:
             trust=np.array([1.0 if p.trust is None else p.trust for p in done]),
             error=np.array([p.error for p in done]),
         )
-
-    def dump(self) -> bytes:
-        """The current engine state as bytes (runs are the caller's to keep)."""
-        return state_to_bytes(self.state)
-
-    @staticmethod
-    def load(blob: bytes) -> EngineState:
-        return state_from_bytes(blob)
 
     def _maybe_refit(self) -> None:
         outstanding = len(self.proposals) - len(self.finished)

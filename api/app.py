@@ -5,10 +5,12 @@ from __future__ import annotations
 import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
+from typing import Any
 
 from fastapi import FastAPI
 
 from honing.api.auth import hash_token
+from honing.api.body import add_body_schemas
 from honing.api.limits import BodyLimitMiddleware
 from honing.api.metrics import Metrics, RequestMetricsMiddleware
 from honing.api.problems import install_problem_handlers
@@ -56,6 +58,13 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         "read the posterior.",
         lifespan=lifespan,
     )
+
+    def openapi() -> dict[str, Any]:
+        if app.openapi_schema is None:
+            app.openapi_schema = add_body_schemas(FastAPI.openapi(app))
+        return app.openapi_schema
+
+    app.openapi = openapi  # type: ignore[method-assign]
     app.state.settings = settings
     app.state.metrics = metrics
     install_problem_handlers(app)

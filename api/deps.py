@@ -20,11 +20,12 @@ _bearer = HTTPBearer(
 Credentials = Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)]
 
 
-def _store(request: Request) -> Store:
+# Dependencies without I/O are async so FastAPI runs them on the event loop, not in a thread.
+async def _store(request: Request) -> Store:
     return request.app.state.store  # type: ignore[no-any-return]
 
 
-def _service(request: Request) -> CalibrationService:
+async def _service(request: Request) -> CalibrationService:
     return request.app.state.service  # type: ignore[no-any-return]
 
 
@@ -39,7 +40,7 @@ def _authorized(
     return service.authorize(calibration_id, credentials.credentials if credentials else None)
 
 
-def _admin(request: Request, credentials: Credentials) -> None:
+async def _admin(request: Request, credentials: Credentials) -> None:
     """Require the admin key when the server has one."""
     expected = request.app.state.admin_key_hash
     if expected is not None:

@@ -132,7 +132,7 @@ class CalibrationSpec:
         """Inverse of `flatten_outputs`: ``{channel: [numbers]}`` from a flat vector."""
         out, start = {}, 0
         for obs in self.observations:
-            out[obs.name] = [float(v) for v in flat[start : start + obs.size]]
+            out[obs.name] = np.asarray(flat[start : start + obs.size], dtype=float).tolist()
             start += obs.size
         return out
 
@@ -154,7 +154,7 @@ class CalibrationSpec:
                 errors.append(((*loc, p.name), "missing"))
                 continue
             v = values[p.name]
-            if not _is_number(v) or not math.isfinite(float(v)):
+            if not _is_finite_number(v):
                 errors.append(((*loc, p.name), "must be a finite number"))
                 continue
             if not bool(p.prior.in_support(np.array([float(v)]))[0]):
@@ -263,10 +263,26 @@ def _is_number(value: Any) -> bool:
     return isinstance(value, int | float) and not isinstance(value, bool)
 
 
+def _is_finite_number(value: Any) -> bool:
+    if not _is_number(value):
+        return False
+    try:
+        return math.isfinite(float(value))
+    except OverflowError:
+        return False
+
+
 def _number_list(value: Any, loc: tuple[str | int, ...]) -> np.ndarray:
     if not isinstance(value, Sequence) or isinstance(value, str):
         raise SpecError.at(loc, "must be a list of numbers")
-    bad = [i for i, v in enumerate(value) if not _is_number(v) or not math.isfinite(float(v))]
+    if set(map(type, value)) <= {float, int}:  # the common case, checked at C speed
+        try:
+            array = np.asarray(value, dtype=float)
+        except OverflowError:  # an integer beyond the float range: located below
+            array = np.array([math.inf])
+        if np.isfinite(array).all():
+            return array
+    bad = [i for i, v in enumerate(value) if not _is_finite_number(v)]
     if bad:
         raise SpecError.at((*loc, bad[0]), "must be a finite number")
     return np.asarray(value, dtype=float)

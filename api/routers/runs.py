@@ -7,7 +7,9 @@ import io
 from typing import Annotated, Literal
 
 from fastapi import APIRouter, Query, Request, Response
+from starlette.concurrency import run_in_threadpool
 
+from honing.api.body import json_body, parse_body
 from honing.api.deps import AuthorizedCalibration, ServiceDep
 from honing.api.models import (
     ImportRequest,
@@ -49,12 +51,14 @@ def lease_runs(
     "/{run_id}",
     response_model=ReportResponse,
     responses=problem_responses(401, 403, 404, 409, 413, 422, 503),
+    openapi_extra=json_body(ReportRequest),
 )
-def report_run(
-    run_id: str, body: ReportRequest, meta: AuthorizedCalibration, service: ServiceDep
+async def report_run(
+    run_id: str, request: Request, meta: AuthorizedCalibration, service: ServiceDep
 ) -> ReportResponse:
     """Report one run's outputs or its failure; the same result again is a no-op."""
-    outcome = service.report(meta, run_id, body.outputs, body.error)
+    body = await parse_body(request, ReportRequest)
+    outcome = await run_in_threadpool(service.report, meta, run_id, body.outputs, body.error)
     return ReportResponse(run_id=outcome.run_id, state=outcome.state, trust=outcome.trust)  # type: ignore[arg-type]
 
 

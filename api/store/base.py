@@ -8,9 +8,10 @@ Points and results are JSON text the store never interprets.
 
 from __future__ import annotations
 
-import json
 from dataclasses import dataclass
 from typing import Any, Protocol
+
+import orjson
 
 __all__ = [
     "CalibrationMeta",
@@ -56,6 +57,8 @@ class CalibrationMeta:
     queued: int
     failed_error: str | None
     refit_failures: int
+    #: A refit job is queued or running (read in the same step as the rest).
+    refit_pending: bool
 
 
 @dataclass(frozen=True)
@@ -92,8 +95,8 @@ class RunRecord:
             leased_at=num("leased_at"),
             lease_expires_at=num("lease_expires_at"),
             completed_at=num("completed_at"),
-            point=json.loads(fields["point"]),
-            result=json.loads(result) if result else None,
+            point=orjson.loads(fields["point"]),
+            result=orjson.loads(result) if result else None,
             imported=fields.get("imported") == "1",
         )
 
@@ -173,10 +176,12 @@ class Store(Protocol):
         state: str,
         result_json: str,
         now: float,
-    ) -> bool:
+    ) -> CalibrationMeta | None:
         """Expire overdue leases, then record a result if the run's epoch is still ``epoch``.
 
-        False means the run changed since it was read (expired or finished): read it again.
+        Returns the calibration's metadata right after the write (so the caller can decide on
+        a refit without another read); None means nothing was written: the run changed since
+        it was read (expired or finished) or is gone, so read it again.
         """
 
     def import_runs(
@@ -193,9 +198,6 @@ class Store(Protocol):
     # refit jobs
     def enqueue_refit(self, calibration_id: str, now: float) -> None:
         """Queue a refit job unless one is queued already."""
-
-    def refit_pending(self, calibration_id: str) -> bool:
-        """Whether a refit job is queued or running."""
 
     def due_refits(self, now: float, limit: int) -> list[str]:
         """Calibration ids whose job is due by ``now``, oldest first."""

@@ -14,6 +14,7 @@ from contextlib import contextmanager
 from typing import Any
 
 import redis
+from redis.commands.core import Script
 
 from honing.api.store.base import (
     CalibrationMeta,
@@ -29,6 +30,12 @@ __all__ = ["RedisStore"]
 log = logging.getLogger(__name__)
 
 _CHUNK = 1000
+
+# Script flags (Redis 7+): a script that writes is refused as a whole, before it starts, while
+# Redis is over maxmemory (so a full Redis answers 503, never half a step); one that only reads
+# runs anyway.
+_WRITES = "#!lua\n"
+_READS = "#!lua flags=no-writes\n"
 
 # Shared by every script that changes runs: expire overdue leases first.
 # Each leased run whose expiry is <= now becomes "expired" (epoch + 1, so a writer holding the
@@ -50,11 +57,35 @@ local function expire_overdue(meta, leases, requeue, run_prefix, now)
 end
 """
 
+# The metadata fields ARGV[first..], then the lengths of the proposal and requeue lists and
+# whether the refit lock is held, as one flat array (missing fields are nil).
+_SNAPSHOT_FN = """
+local function meta_snapshot(meta, proposals, requeue, lock, argv, first)
+  local out = redis.call('HMGET', meta, unpack(argv, first))
+  table.insert(out, redis.call('LLEN', proposals))
+  table.insert(out, redis.call('LLEN', requeue))
+  table.insert(out, redis.call('EXISTS', lock))
+  return out
+end
+"""
+
+# KEYS: 1 meta, 2 proposals, 3 requeue, 4 refit lock;  ARGV: the metadata fields to return
+# Reads metadata, queue lengths and the lock in one step. Returns {} when there is none.
+_META = (
+    _READS
+    + _SNAPSHOT_FN
+    + """
+if redis.call('EXISTS', KEYS[1]) == 0 then return {} end
+return meta_snapshot(KEYS[1], KEYS[2], KEYS[3], KEYS[4], ARGV, 1)
+"""
+)
+
 # KEYS: 1 meta, 2 requeue, 3 leases
 # ARGV: 1 run key prefix, 2 now
 # Returns the number of leases expired, or -1 when the calibration does not exist.
 _EXPIRE = (
-    _EXPIRE_FN
+    _WRITES
+    + _EXPIRE_FN
     + """
 if redis.call('EXISTS', KEYS[1]) == 0 then return -1 end
 return expire_overdue(KEYS[1], KEYS[3], KEYS[2], ARGV[1], ARGV[2])
@@ -68,7 +99,8 @@ return expire_overdue(KEYS[1], KEYS[3], KEYS[2], ARGV[1], ARGV[2])
 # id "r<seq>", state "leased", epoch 1.
 # Returns {expired, rid_1, seq_1, point_1, rid_2, ...}, or {-1} when the calibration is gone.
 _LEASE = (
-    _EXPIRE_FN
+    _WRITES
+    + _EXPIRE_FN
     + """
 local meta = KEYS[1]
 if redis.call('EXISTS', meta) == 0 then return {-1} end
@@ -96,14 +128,17 @@ return out
 """
 )
 
-# KEYS: 1 meta, 2 requeue, 3 leases, 4 finished, 5 the run's hash
+# KEYS: 1 meta, 2 requeue, 3 leases, 4 finished, 5 the run's hash, 6 proposals, 7 refit lock
 # ARGV: 1 run key prefix, 2 now, 3 run id, 4 expected epoch, 5 new state ("done"/"failed"),
-#       6 result JSON, 7 completion time
+#       6 result JSON, 7 completion time, 8... the metadata fields to return
 # Expires overdue leases, then writes the result only if the run's epoch is still the one the
 # caller read (fencing: a run that expired or finished meanwhile has a new epoch).
-# Returns 1 written, 0 stale epoch, -1 no calibration, -2 no such run.
+# Returns {1, snapshot} written (the metadata after the write, as _META returns it), 0 stale
+# epoch, -1 no calibration, -2 no such run.
 _FINISH = (
-    _EXPIRE_FN
+    _WRITES
+    + _EXPIRE_FN
+    + _SNAPSHOT_FN
     + """
 local meta = KEYS[1]
 if redis.call('EXISTS', meta) == 0 then return -1 end
@@ -121,14 +156,16 @@ redis.call('HSET', rk, 'state', ARGV[5], 'result', ARGV[6], 'completed_at', ARGV
 redis.call('HINCRBY', rk, 'epoch', 1)
 redis.call('HINCRBY', meta, ARGV[5], 1)
 redis.call('RPUSH', KEYS[4], ARGV[3])
-return 1
+return {1, meta_snapshot(meta, KEYS[6], KEYS[2], KEYS[7], ARGV, 8)}
 """
 )
 
 # KEYS: 1 meta, 2 runs, 3 finished
 # ARGV: 1 run key prefix, 2 now, then point JSON and result JSON for each imported run
 # Adds every run as "done" (imported = 1) in one step. Returns the new run ids, or {-1}.
-_IMPORT = """
+_IMPORT = (
+    _WRITES
+    + """
 local meta = KEYS[1]
 if redis.call('EXISTS', meta) == 0 then return {-1} end
 local out = {}
@@ -145,13 +182,16 @@ for i = 3, #ARGV, 2 do
 end
 return out
 """
+)
 
 # KEYS: 1 meta, 2 state, 3 proposals
 # ARGV: 1 expected state version, 2 state blob, 3 round, 4 engine status, then proposal JSONs
 # Compare-and-swap: replaces the state and the proposal queue only when the stored version is
 # still the one the refit started from, so a stale refit never overwrites a newer state.
 # Returns 1 swapped, 0 version moved on, -1 no calibration.
-_SWAP = """
+_SWAP = (
+    _WRITES
+    + """
 local meta = KEYS[1]
 if redis.call('EXISTS', meta) == 0 then return -1 end
 if redis.call('HGET', meta, 'state_version') ~= ARGV[1] then return 0 end
@@ -162,11 +202,14 @@ redis.call('HINCRBY', meta, 'state_version', 1)
 redis.call('HSET', meta, 'round', ARGV[3], 'engine_status', ARGV[4])
 return 1
 """
+)
 
 # KEYS: every fixed key of the calibration (CalibrationKeys.fixed(), runs list at 6)
 # ARGV: 1 run key prefix
 # Deletes each run hash listed in the runs list, then the fixed keys. Returns 1 if it existed.
-_DELETE = """
+_DELETE = (
+    _WRITES
+    + """
 local existed = redis.call('EXISTS', KEYS[1])
 for _, rid in ipairs(redis.call('LRANGE', KEYS[6], 0, -1)) do
   redis.call('DEL', ARGV[1] .. rid)
@@ -174,12 +217,15 @@ end
 for i = 1, #KEYS do redis.call('DEL', KEYS[i]) end
 return existed
 """
+)
 
 # KEYS: 1 meta
 # ARGV: 1 error text, 2 failures allowed
 # Counts a failed refit; at the limit marks the calibration failed. Returns 1 failed now,
 # 0 keep retrying, -1 no calibration (nothing is created).
-_REFIT_FAILURE = """
+_REFIT_FAILURE = (
+    _WRITES
+    + """
 if redis.call('EXISTS', KEYS[1]) == 0 then return -1 end
 local n = redis.call('HINCRBY', KEYS[1], 'refit_failures', 1)
 if n >= tonumber(ARGV[2]) then
@@ -188,29 +234,39 @@ if n >= tonumber(ARGV[2]) then
 end
 return 0
 """
+)
 
 # KEYS: 1 meta
 # Resets the refit failure count after a good refit, without re-creating a deleted calibration.
-_REFIT_OK = """
+_REFIT_OK = (
+    _WRITES
+    + """
 if redis.call('EXISTS', KEYS[1]) == 1 then redis.call('HSET', KEYS[1], 'refit_failures', 0) end
 return 1
 """
+)
 
 # KEYS: 1 refit lock;  ARGV: 1 owner token, 2 ttl in ms
 # Extends the lock only while the caller still owns it. Returns 1 renewed, 0 lost.
-_RENEW = """
+_RENEW = (
+    _WRITES
+    + """
 if redis.call('GET', KEYS[1]) == ARGV[1] then
   return redis.call('PEXPIRE', KEYS[1], ARGV[2])
 end
 return 0
 """
+)
 
 # KEYS: 1 refit lock;  ARGV: 1 owner token
 # Deletes the lock only if the caller owns it (an expired lock may belong to someone else).
-_RELEASE = """
+_RELEASE = (
+    _WRITES
+    + """
 if redis.call('GET', KEYS[1]) == ARGV[1] then return redis.call('DEL', KEYS[1]) end
 return 0
 """
+)
 
 
 # Metadata fields read on every request (the spec is read apart, and cached by the service).
@@ -226,6 +282,27 @@ _META_FIELDS = [
     "failed_error",
     "refit_failures",
 ]
+
+
+def _meta_from(calibration_id: str, snapshot: list[Any], queued: bool) -> CalibrationMeta:
+    """`CalibrationMeta` from a `_META` snapshot and whether a refit job is queued."""
+    m = {f: _s(v) for f, v in zip(_META_FIELDS, snapshot, strict=False)}
+    n_proposals, n_requeue, locked = (int(v) for v in snapshot[len(_META_FIELDS) :])
+    return CalibrationMeta(
+        id=calibration_id,
+        token_hash=str(m["token_hash"]),
+        created_at=float(str(m["created_at"])),
+        state_version=int(str(m["state_version"])),
+        round=int(str(m["round"])),
+        engine_status=str(m["engine_status"]),
+        done=int(str(m["done"])),
+        failed=int(str(m["failed"])),
+        leased=int(str(m["leased"])),
+        queued=n_proposals + n_requeue,
+        failed_error=m.get("failed_error"),
+        refit_failures=int(str(m.get("refit_failures") or 0)),
+        refit_pending=queued or bool(locked),
+    )
 
 
 def _s(value: bytes | str | None) -> str | None:
@@ -248,6 +325,7 @@ class RedisStore:
         self._r = redis.Redis.from_url(
             url, socket_timeout=5.0, socket_connect_timeout=2.0, decode_responses=False
         )
+        self._meta = self._r.register_script(_META)
         self._expire = self._r.register_script(_EXPIRE)
         self._lease = self._r.register_script(_LEASE)
         self._finish = self._r.register_script(_FINISH)
@@ -272,6 +350,29 @@ class RedisStore:
             redis.OutOfMemoryError,  # maxmemory reached under noeviction: writes refused
         ) as exc:
             raise StoreUnavailable(f"redis unavailable: {exc}") from exc
+
+    def _with_queue_entry(
+        self, script: Script, keys: list[str], args: list[Any], calibration_id: str
+    ) -> tuple[Any, bool]:
+        """Run ``script`` and look up the calibration in the global refit queue, in one round
+        trip; returns the script's answer and whether a refit job is queued.
+
+        The script runs as a plain EVALSHA in a non-transactional pipeline (the queue is in
+        another slot); a server that lost its scripts (a restart) gets it loaded once more.
+        """
+
+        def run() -> tuple[Any, bool]:
+            pipe = self._r.pipeline(transaction=False)
+            pipe.evalsha(script.sha, len(keys), *keys, *args)
+            pipe.zscore(REFIT_DUE, calibration_id)
+            out, score = pipe.execute()
+            return out, score is not None
+
+        try:
+            return run()
+        except redis.exceptions.NoScriptError:
+            self._r.script_load(script.script)
+            return run()
 
     def ping(self) -> None:
         with self._guard():
@@ -355,28 +456,12 @@ class RedisStore:
     def get_meta(self, calibration_id: str) -> CalibrationMeta | None:
         k = CalibrationKeys(calibration_id)
         with self._guard():
-            pipe = self._r.pipeline(transaction=True)
-            pipe.hmget(k.meta, _META_FIELDS)
-            pipe.llen(k.proposals)
-            pipe.llen(k.requeue)
-            raw, n_proposals, n_requeue = pipe.execute()
-        if raw[0] is None:
+            snapshot, queued = self._with_queue_entry(
+                self._meta, [k.meta, k.proposals, k.requeue, k.refit_lock], _META_FIELDS, k.id
+            )
+        if not snapshot:
             return None
-        m = {f: _s(v) for f, v in zip(_META_FIELDS, raw, strict=True)}
-        return CalibrationMeta(
-            id=calibration_id,
-            token_hash=str(m["token_hash"]),
-            created_at=float(str(m["created_at"])),
-            state_version=int(str(m["state_version"])),
-            round=int(str(m["round"])),
-            engine_status=str(m["engine_status"]),
-            done=int(str(m["done"])),
-            failed=int(str(m["failed"])),
-            leased=int(str(m["leased"])),
-            queued=int(n_proposals) + int(n_requeue),
-            failed_error=m.get("failed_error"),
-            refit_failures=int(str(m.get("refit_failures") or 0)),
-        )
+        return _meta_from(calibration_id, snapshot, queued)
 
     def get_spec(self, calibration_id: str) -> str | None:
         with self._guard():
@@ -479,24 +564,16 @@ class RedisStore:
         state: str,
         result_json: str,
         now: float,
-    ) -> bool:
+    ) -> CalibrationMeta | None:
         k = CalibrationKeys(calibration_id)
+        keys = [k.meta, k.requeue, k.leases, k.finished, k.run(run_id), k.proposals, k.refit_lock]
+        args = [k.run_prefix, _time(now), run_id, str(epoch), state, result_json, _time(now)]
         with self._guard():
-            out = self._finish(
-                keys=[k.meta, k.requeue, k.leases, k.finished, k.run(run_id)],
-                args=[
-                    k.run_prefix,
-                    _time(now),
-                    run_id,
-                    str(epoch),
-                    state,
-                    result_json,
-                    _time(now),
-                ],
-            )
-            if int(out) == 1:
-                self._durable()
-        return int(out) == 1
+            out, queued = self._with_queue_entry(self._finish, keys, [*args, *_META_FIELDS], k.id)
+            if isinstance(out, int):
+                return None
+            self._durable()
+        return _meta_from(calibration_id, out[1], queued)
 
     def import_runs(
         self, calibration_id: str, items: list[tuple[str, str]], now: float
@@ -542,15 +619,6 @@ class RedisStore:
     def enqueue_refit(self, calibration_id: str, now: float) -> None:
         with self._guard():
             self._r.zadd(REFIT_DUE, {calibration_id: now}, nx=True)
-
-    def refit_pending(self, calibration_id: str) -> bool:
-        k = CalibrationKeys(calibration_id)
-        with self._guard():
-            pipe = self._r.pipeline(transaction=False)
-            pipe.zscore(REFIT_DUE, calibration_id)
-            pipe.exists(k.refit_lock)
-            score, locked = pipe.execute()
-        return score is not None or bool(locked)
 
     def due_refits(self, now: float, limit: int) -> list[str]:
         with self._guard():

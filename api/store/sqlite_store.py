@@ -203,17 +203,27 @@ class SqliteStore:
 
     def get_meta(self, calibration_id: str) -> CalibrationMeta | None:
         with self._read() as db:
-            row = db.execute(
-                "SELECT id, token_hash, created_at, state_version, round, engine_status, "
-                "done, failed, leased, failed_error, refit_failures FROM calibrations "
-                "WHERE id = ?",
-                (calibration_id,),
-            ).fetchone()
-            if row is None:
-                return None
-            (queued,) = db.execute(
-                "SELECT COUNT(*) FROM queue WHERE calibration_id = ?", (calibration_id,)
-            ).fetchone()
+            return self._meta(db, calibration_id)
+
+    @staticmethod
+    def _meta(db: sqlite3.Connection, calibration_id: str) -> CalibrationMeta | None:
+        # Inside the caller's transaction, so the counters, queue and refit job agree.
+        row = db.execute(
+            "SELECT id, token_hash, created_at, state_version, round, engine_status, "
+            "done, failed, leased, failed_error, refit_failures FROM calibrations "
+            "WHERE id = ?",
+            (calibration_id,),
+        ).fetchone()
+        if row is None:
+            return None
+        (queued,) = db.execute(
+            "SELECT COUNT(*) FROM queue WHERE calibration_id = ?", (calibration_id,)
+        ).fetchone()
+        pending = db.execute(
+            "SELECT EXISTS (SELECT 1 FROM refit_jobs WHERE calibration_id = ?) "
+            "OR EXISTS (SELECT 1 FROM refit_locks WHERE calibration_id = ? AND expires_at > ?)",
+            (calibration_id, calibration_id, _now()),
+        ).fetchone()[0]
         return CalibrationMeta(
             id=row["id"],
             token_hash=row["token_hash"],
@@ -227,6 +237,7 @@ class SqliteStore:
             queued=int(queued),
             failed_error=row["failed_error"],
             refit_failures=row["refit_failures"],
+            refit_pending=bool(pending),
         )
 
     def get_spec(self, calibration_id: str) -> str | None:
@@ -380,20 +391,20 @@ class SqliteStore:
         state: str,
         result_json: str,
         now: float,
-    ) -> bool:
+    ) -> CalibrationMeta | None:
         with self._write() as db:
             if (
                 db.execute("SELECT 1 FROM calibrations WHERE id = ?", (calibration_id,)).fetchone()
                 is None
             ):
-                return False
+                return None
             self._expire_overdue(db, calibration_id, now)
             row = db.execute(
                 "SELECT state, epoch FROM runs WHERE calibration_id = ? AND run_id = ?",
                 (calibration_id, run_id),
             ).fetchone()
             if row is None or row[1] != epoch or row[0] in ("done", "failed"):
-                return False
+                return None
             (order,) = db.execute(
                 "SELECT COALESCE(MAX(finish_order), 0) + 1 FROM runs WHERE calibration_id = ?",
                 (calibration_id,),
@@ -410,7 +421,7 @@ class SqliteStore:
                 "WHERE id = ?",
                 (was_leased, calibration_id),
             )
-        return True
+            return self._meta(db, calibration_id)
 
     def import_runs(
         self, calibration_id: str, items: list[tuple[str, str]], now: float
@@ -471,17 +482,6 @@ class SqliteStore:
                 "SELECT id, ? FROM calibrations WHERE id = ?",
                 (now, calibration_id),
             )
-
-    def refit_pending(self, calibration_id: str) -> bool:
-        with self._read() as db:
-            job = db.execute(
-                "SELECT 1 FROM refit_jobs WHERE calibration_id = ?", (calibration_id,)
-            ).fetchone()
-            lock = db.execute(
-                "SELECT 1 FROM refit_locks WHERE calibration_id = ? AND expires_at > ?",
-                (calibration_id, _now()),
-            ).fetchone()
-        return job is not None or lock is not None
 
     def due_refits(self, now: float, limit: int) -> list[str]:
         with self._read() as db:

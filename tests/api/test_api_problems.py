@@ -160,6 +160,28 @@ def test_malformed_json_is_422(client: AppClient) -> None:
     assert_problem(response, 422)
 
 
+@pytest.mark.parametrize(
+    ("content", "content_type"),
+    [
+        (b'{"outputs": {"y": [1.0, ', "application/json"),  # cut off
+        (b"", "application/json"),  # empty
+        (b'{"error": "boom"}', "text/plain"),  # JSON under another media type
+    ],
+)
+def test_unreadable_report_body_is_422_and_changes_nothing(
+    client: AppClient, calibration: Calibration, content: bytes, content_type: str
+) -> None:
+    (run,) = lease(client, calibration)
+    response = client.put(
+        f"{calibration.url}/runs/{run['run_id']}",
+        content=content,
+        headers={**calibration.headers, "Content-Type": content_type},
+    )
+    assert all(loc[0] == "body" for loc in locs(assert_problem(response, 422)))
+    listed = client.get(f"{calibration.url}/runs", headers=calibration.headers).json()["runs"]
+    assert [r["state"] for r in listed] == ["leased"]
+
+
 def test_bad_query_is_422(client: AppClient, calibration: Calibration) -> None:
     for query in ("count=0", "count=abc", "count=100001", "format=xml"):
         url = f"{calibration.url}/posterior/samples?{query}"

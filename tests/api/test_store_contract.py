@@ -73,6 +73,17 @@ def test_finish_run_is_fenced_by_epoch(store: Store) -> None:
     assert stored.result == {"outputs": {"y": [1.0]}, "error": None, "trust": 1.0}
     meta = store.get_meta("c1")
     assert meta is not None and (meta.done, meta.leased) == (1, 0)
+
+
+def test_finish_run_returns_the_metadata_after_the_write(store: Store) -> None:
+    make(store)
+    _, second = store.lease("c1", 2, "w", 0.0, 60.0, 100).runs
+    store.enqueue_refit("c1", 0.5)
+    after = store.finish_run("c1", second.run_id, second.epoch, "failed", done(1.0), 1.0)
+    assert after is not None
+    assert (after.done, after.failed, after.leased, after.queued) == (0, 1, 1, 3)
+    assert after.refit_pending and after.state_version == 1
+    assert after == store.get_meta("c1")
     assert not store.finish_run("c1", "r999", 1, "done", done(1.0), 1.0)
 
 
@@ -153,7 +164,13 @@ def test_refit_queue_and_lock(store: Store) -> None:
     assert store.due_refits(10.0, 10) == ["c2", "c1"]
     assert store.due_refits(5.5, 10) == ["c2"]
     assert store.refit_queue_depth() == 2
-    assert store.refit_pending("c1")
+
+    def pending(cid: str) -> bool:
+        meta = store.get_meta(cid)
+        assert meta is not None
+        return meta.refit_pending
+
+    assert pending("c1")
     assert store.acquire_refit_lock("c1", "me", 30.0)
     assert not store.acquire_refit_lock("c1", "other", 30.0)
     assert store.renew_refit_lock("c1", "me", 30.0)
@@ -164,7 +181,11 @@ def test_refit_queue_and_lock(store: Store) -> None:
     assert store.acquire_refit_lock("c1", "other", 30.0)
     store.finish_refit("c2")
     assert store.due_refits(10.0, 10) == ["c1"]
-    assert not store.refit_pending("c2")
+    assert not pending("c2")
+    store.finish_refit("c1")
+    assert pending("c1"), "a running refit (the lock held) is pending too"
+    store.release_refit_lock("c1", "other")
+    assert not pending("c1")
 
 
 def test_refit_lock_expires(store: Store) -> None:

@@ -49,6 +49,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         try:
             yield
         finally:
+            await store.aclose()
             store.close()
 
     app = FastAPI(

@@ -9,7 +9,7 @@ from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 
 from honing.api.auth import check_token
 from honing.api.service import CalibrationService
-from honing.api.store import CalibrationMeta, Store
+from honing.api.store import Store
 
 __all__ = ["AdminAccess", "AuthorizedCalibration", "ServiceDep", "StoreDep"]
 
@@ -33,11 +33,10 @@ StoreDep = Annotated[Store, Depends(_store)]
 ServiceDep = Annotated[CalibrationService, Depends(_service)]
 
 
-def _authorized(
-    calibration_id: str, service: ServiceDep, credentials: Credentials
-) -> CalibrationMeta:
-    """The calibration of the path, once its token checks out (404 first if it is unknown)."""
-    return service.authorize(calibration_id, credentials.credentials if credentials else None)
+async def _authorized(calibration_id: str, service: ServiceDep, credentials: Credentials) -> str:
+    """The calibration id of the path, once its token checks out (404 first if unknown)."""
+    token = credentials.credentials if credentials else None
+    return await service.authorize(calibration_id, token)
 
 
 async def _admin(request: Request, credentials: Credentials) -> None:
@@ -47,5 +46,5 @@ async def _admin(request: Request, credentials: Credentials) -> None:
         check_token(credentials.credentials if credentials else None, expected)
 
 
-AuthorizedCalibration = Annotated[CalibrationMeta, Depends(_authorized)]
+AuthorizedCalibration = Annotated[str, Depends(_authorized)]
 AdminAccess = Depends(_admin)

@@ -97,7 +97,7 @@ class Refitter:
             self.store.finish_refit(calibration_id)
             return self._outcome("skipped")
         try:
-            spec = self.service.spec(meta)
+            spec = self.service.spec(calibration_id)
             state = self.service.state(meta)
             records = self.store.finished_runs(calibration_id)
             finished = meta.done + meta.failed

@@ -157,22 +157,23 @@ class CalibrationService:
         self._specs: OrderedDict[str, CalibrationSpec] = OrderedDict()
         self._states: OrderedDict[str, tuple[int, EngineState]] = OrderedDict()
         self._leased: OrderedDict[tuple[str, str], RunRecord] = OrderedDict()
+        self._token_hashes: OrderedDict[str, str] = OrderedDict()
 
     # caches
 
-    def spec(self, meta: CalibrationMeta) -> CalibrationSpec:
+    def spec(self, calibration_id: str) -> CalibrationSpec:
         """The parsed spec of a calibration (cached)."""
         with self._lock:
-            spec = self._specs.get(meta.id)
+            spec = self._specs.get(calibration_id)
             if spec is not None:
-                self._specs.move_to_end(meta.id)
+                self._specs.move_to_end(calibration_id)
                 return spec
-        text = self.store.get_spec(meta.id)
+        text = self.store.get_spec(calibration_id)
         if text is None:
-            raise NotFound(f"calibration {meta.id!r} does not exist")
+            raise NotFound(f"calibration {calibration_id!r} does not exist")
         spec = CalibrationSpec.from_dict(json.loads(text))
         with self._lock:
-            self._specs[meta.id] = spec
+            self._specs[calibration_id] = spec
             while len(self._specs) > _CACHE_SIZE:
                 self._specs.popitem(last=False)
         return spec
@@ -199,6 +200,7 @@ class CalibrationService:
         with self._lock:
             self._specs.pop(calibration_id, None)
             self._states.pop(calibration_id, None)
+            self._token_hashes.pop(calibration_id, None)
 
     def _remember_leased(self, calibration_id: str, records: Sequence[RunRecord]) -> None:
         with self._lock:
@@ -227,11 +229,29 @@ class CalibrationService:
             raise NotFound(f"calibration {calibration_id!r} does not exist")
         return meta
 
-    def authorize(self, calibration_id: str, token: str | None) -> CalibrationMeta:
-        """Check existence first (404 whatever the token), then the calibration token."""
-        meta = self.meta(calibration_id)
-        check_token(token, meta.token_hash)
-        return meta
+    async def authorize(self, calibration_id: str, token: str | None) -> str:
+        """The calibration id once the token checks out: 404 first for an unknown id (whatever
+        the token), then the token against the calibration's hash.
+
+        A calibration's token hash never changes and ids are never reused, so hashes are
+        cached: most requests are let in without a store read. A calibration deleted through
+        another replica passes here, and the operation itself then answers 404.
+        """
+        if not _CALIBRATION_ID.fullmatch(calibration_id):
+            raise NotFound(f"calibration {calibration_id!r} does not exist")
+        with self._lock:
+            expected = self._token_hashes.get(calibration_id)
+        if expected is None:
+            meta = await self.store.get_meta_async(calibration_id)
+            if meta is None:
+                raise NotFound(f"calibration {calibration_id!r} does not exist")
+            expected = meta.token_hash
+            with self._lock:
+                self._token_hashes[calibration_id] = expected
+                while len(self._token_hashes) > _CACHE_SIZE * 64:
+                    self._token_hashes.popitem(last=False)
+        check_token(token, expected)
+        return calibration_id
 
     def status(self, meta: CalibrationMeta) -> str:
         """collecting, fitting, converged, budget_exhausted or failed."""
@@ -265,11 +285,12 @@ class CalibrationService:
         )
         return calibration_id, token, state.status
 
-    def describe(self, meta: CalibrationMeta) -> dict[str, Any]:
+    def describe(self, calibration_id: str) -> dict[str, Any]:
         """Spec, status, counts and round of a calibration."""
+        meta = self.meta(calibration_id)
         return {
             "id": meta.id,
-            "name": self.spec(meta).name,
+            "name": self.spec(meta.id).name,
             "status": self.status(meta),
             "round": meta.round,
             "runs_completed": meta.done,
@@ -278,7 +299,7 @@ class CalibrationService:
             "runs_queued": meta.queued,
             "created_at": rfc3339(meta.created_at),
             "error": meta.failed_error,
-            "spec": self.spec(meta).to_dict(),
+            "spec": self.spec(meta.id).to_dict(),
         }
 
     def delete(self, calibration_id: str) -> None:
@@ -290,13 +311,14 @@ class CalibrationService:
     # runs
 
     def lease(
-        self, meta: CalibrationMeta, count: int, worker: str, lease_seconds: float
+        self, calibration_id: str, count: int, worker: str, lease_seconds: float
     ) -> LeaseOutcome:
         """Hand out up to ``count`` points; never blocks on a refit."""
+        meta = self.meta(calibration_id)
         status = self.status(meta)
         if status in FINAL_STATUSES:
             return LeaseOutcome([], status, None)
-        spec = self.spec(meta)
+        spec = self.spec(meta.id)
         result = self.store.lease(
             meta.id, count, worker, self.clock(), lease_seconds, spec.max_runs
         )
@@ -315,23 +337,23 @@ class CalibrationService:
 
     def report(
         self,
-        meta: CalibrationMeta,
+        calibration_id: str,
         run_id: str,
         outputs: Mapping[str, Any] | None,
         error: str | None,
     ) -> ReportOutcome:
         """Record one result: validated, trust computed, fenced by the run's epoch."""
-        spec = self.spec(meta)
+        spec = self.spec(calibration_id)
         flat = spec.flatten_outputs(outputs) if outputs is not None else None
         normalised = spec.split_outputs(flat) if flat is not None else None
         new_state = "failed" if flat is None else "done"
         known = _RUN_ID.fullmatch(run_id) is not None
-        record = self._leased_record(meta.id, run_id) if known else None
+        record = self._leased_record(calibration_id, run_id) if known else None
         for _ in range(_REPORT_ATTEMPTS):
             if record is None:
-                record = self.store.get_run(meta.id, run_id) if known else None
+                record = self.store.get_run(calibration_id, run_id) if known else None
             if record is None:
-                raise NotFound(f"run {run_id!r} does not exist in calibration {meta.id!r}")
+                raise NotFound(f"run {run_id!r} does not exist in calibration {calibration_id!r}")
             if record.state in ("done", "failed"):
                 previous = record.result or {}
                 same = record.state == new_state and (
@@ -350,7 +372,7 @@ class CalibrationService:
                 trust = float(trust_index(spec, predicted, flat))
             result = {"outputs": normalised, "error": error, "trust": trust}
             after = self.store.finish_run(
-                meta.id, run_id, record.epoch, new_state, _dumps(result), self.clock()
+                calibration_id, run_id, record.epoch, new_state, _dumps(result), self.clock()
             )
             if after is not None:
                 self._count(new_state)
@@ -359,9 +381,9 @@ class CalibrationService:
             record = None  # it changed under us: read it again
         raise ConflictError(f"run {run_id!r} kept changing while its result was written")
 
-    def import_runs(self, meta: CalibrationMeta, runs: Sequence[Mapping[str, Any]]) -> int:
+    def import_runs(self, calibration_id: str, runs: Sequence[Mapping[str, Any]]) -> int:
         """Add runs evaluated elsewhere, all or nothing, as done with trust 1."""
-        spec = self.spec(meta)
+        spec = self.spec(calibration_id)
         errors: list[tuple[list[str | int], str]] = []
         items: list[tuple[str, str]] = []
         for i, run in enumerate(runs):
@@ -382,11 +404,11 @@ class CalibrationService:
             raise SpecError(errors)
         if not items:
             return 0
-        ids = self.store.import_runs(meta.id, items, self.clock())
+        ids = self.store.import_runs(calibration_id, items, self.clock())
         if not ids:
-            raise NotFound(f"calibration {meta.id!r} does not exist")
+            raise NotFound(f"calibration {calibration_id!r} does not exist")
         self._count("imported", len(ids))
-        self.schedule_refit(meta.id)
+        self.schedule_refit(calibration_id)
         return len(ids)
 
     def schedule_refit(self, calibration_id: str) -> bool:
@@ -399,14 +421,15 @@ class CalibrationService:
         if meta.failed_error:
             return False
         state = self.state(meta)
-        if refit_due(self.spec(meta), state, meta.done + meta.failed, meta.leased, meta.queued):
+        if refit_due(self.spec(meta.id), state, meta.done + meta.failed, meta.leased, meta.queued):
             self.store.enqueue_refit(meta.id, self.clock())
             return True
         return False
 
-    def runs(self, meta: CalibrationMeta, state: str | None = None) -> list[dict[str, Any]]:
+    def runs(self, calibration_id: str, state: str | None = None) -> list[dict[str, Any]]:
         """Every run (optionally in one state) as API dicts, in creation order."""
-        return [self.run_view(r) for r in self.store.list_runs(meta.id, state)]
+        self.meta(calibration_id)  # 404 for a calibration deleted meanwhile
+        return [self.run_view(r) for r in self.store.list_runs(calibration_id, state)]
 
     @staticmethod
     def run_view(record: RunRecord) -> dict[str, Any]:
@@ -428,8 +451,9 @@ class CalibrationService:
 
     # posterior
 
-    def posterior(self, meta: CalibrationMeta) -> dict[str, Any]:
+    def posterior(self, calibration_id: str) -> dict[str, Any]:
         """The latest posterior summary with live status and counts."""
+        meta = self.meta(calibration_id)
         state = self.state(meta)
         summary = dict(state.summary)
         summary["round"] = state.round
@@ -438,13 +462,15 @@ class CalibrationService:
         summary["runs_failed"] = meta.failed
         return summary
 
-    def samples(self, meta: CalibrationMeta, count: int) -> tuple[list[str], np.ndarray]:
+    def samples(self, calibration_id: str, count: int) -> tuple[list[str], np.ndarray]:
         """Up to ``count`` posterior draws with their column names."""
-        names, draws = posterior_samples(self.spec(meta), self.state(meta), count)
+        meta = self.meta(calibration_id)
+        names, draws = posterior_samples(self.spec(meta.id), self.state(meta), count)
         return list(names), np.asarray(draws, dtype=float)
 
     def report_inputs(
-        self, meta: CalibrationMeta
+        self, calibration_id: str
     ) -> tuple[CalibrationSpec, EngineState, list[dict[str, Any]]]:
         """What the HTML report needs: spec, state and runs."""
-        return self.spec(meta), self.state(meta), self.runs(meta)
+        meta = self.meta(calibration_id)
+        return self.spec(meta.id), self.state(meta), self.runs(meta.id)

@@ -29,9 +29,11 @@ def create_calibration(body: SpecRequest, service: ServiceDep) -> CreateResponse
     response_model=CalibrationResponse,
     responses=problem_responses(401, 403, 404, 503),
 )
-def get_calibration(meta: AuthorizedCalibration, service: ServiceDep) -> CalibrationResponse:
+def get_calibration(
+    calibration_id: AuthorizedCalibration, service: ServiceDep
+) -> CalibrationResponse:
     """Spec, status, counts and round."""
-    return CalibrationResponse(**service.describe(meta))
+    return CalibrationResponse(**service.describe(calibration_id))
 
 
 @router.delete(
@@ -40,7 +42,7 @@ def get_calibration(meta: AuthorizedCalibration, service: ServiceDep) -> Calibra
     response_class=Response,
     responses=problem_responses(401, 403, 404, 503),
 )
-def delete_calibration(meta: AuthorizedCalibration, service: ServiceDep) -> Response:
+def delete_calibration(calibration_id: AuthorizedCalibration, service: ServiceDep) -> Response:
     """Delete the calibration and all its runs."""
-    service.delete(meta.id)
+    service.delete(calibration_id)
     return Response(status_code=status.HTTP_204_NO_CONTENT)

@@ -24,9 +24,9 @@ MAX_SAMPLES = 100_000
     response_model=PosteriorResponse,
     responses=problem_responses(401, 403, 404, 503),
 )
-def get_posterior(meta: AuthorizedCalibration, service: ServiceDep) -> PosteriorResponse:
+def get_posterior(calibration_id: AuthorizedCalibration, service: ServiceDep) -> PosteriorResponse:
     """Latest posterior summary and diagnostics (the prior's at round 0)."""
-    return PosteriorResponse(**service.posterior(meta))
+    return PosteriorResponse(**service.posterior(calibration_id))
 
 
 @router.get(
@@ -38,13 +38,13 @@ def get_posterior(meta: AuthorizedCalibration, service: ServiceDep) -> Posterior
     },
 )
 def get_samples(
-    meta: AuthorizedCalibration,
+    calibration_id: AuthorizedCalibration,
     service: ServiceDep,
     count: Annotated[int, Query(ge=1, le=MAX_SAMPLES)] = 1000,
     format: Annotated[Literal["json", "csv"], Query()] = "json",
 ) -> SamplesResponse | Response:
     """Up to ``count`` posterior draws, one column per name; ``?format=csv`` for CSV."""
-    names, draws = service.samples(meta, count)
+    names, draws = service.samples(calibration_id, count)
     if format == "json":
         return SamplesResponse(names=names, samples=draws.tolist())
     buffer = io.StringIO()
@@ -59,9 +59,9 @@ def get_samples(
     response_class=HTMLResponse,
     responses=problem_responses(401, 403, 404, 503),
 )
-def get_report(meta: AuthorizedCalibration, service: ServiceDep) -> HTMLResponse:
+def get_report(calibration_id: AuthorizedCalibration, service: ServiceDep) -> HTMLResponse:
     """A self-contained HTML page with the posterior's plots."""
     from honing.api.report import render_report  # imported here: it pulls in plotting
 
-    spec, state, runs = service.report_inputs(meta)
+    spec, state, runs = service.report_inputs(calibration_id)
     return HTMLResponse(render_report(spec, state, runs))

@@ -34,14 +34,14 @@ _CSV = {"text/csv": {"schema": {"type": "string"}}}
 )
 def lease_runs(
     body: LeaseRequest,
-    meta: AuthorizedCalibration,
+    calibration_id: AuthorizedCalibration,
     service: ServiceDep,
     request: Request,
     response: Response,
 ) -> LeaseResponse:
     """Lease up to ``count`` points; an empty list comes with Retry-After while work remains."""
     seconds = body.lease_seconds or request.app.state.settings.lease_seconds
-    outcome = service.lease(meta, body.count, body.worker, seconds)
+    outcome = service.lease(calibration_id, body.count, body.worker, seconds)
     if outcome.retry_after is not None:
         response.headers["Retry-After"] = str(outcome.retry_after)
     return LeaseResponse(runs=outcome.runs, status=outcome.status)  # type: ignore[arg-type]
@@ -54,11 +54,13 @@ def lease_runs(
     openapi_extra=json_body(ReportRequest),
 )
 async def report_run(
-    run_id: str, request: Request, meta: AuthorizedCalibration, service: ServiceDep
+    run_id: str, request: Request, calibration_id: AuthorizedCalibration, service: ServiceDep
 ) -> ReportResponse:
     """Report one run's outputs or its failure; the same result again is a no-op."""
     body = await parse_body(request, ReportRequest)
-    outcome = await run_in_threadpool(service.report, meta, run_id, body.outputs, body.error)
+    outcome = await run_in_threadpool(
+        service.report, calibration_id, run_id, body.outputs, body.error
+    )
     return ReportResponse(run_id=outcome.run_id, state=outcome.state, trust=outcome.trust)  # type: ignore[arg-type]
 
 
@@ -68,11 +70,11 @@ async def report_run(
     responses=problem_responses(401, 403, 404, 413, 422, 503),
 )
 def import_runs(
-    body: ImportRequest, meta: AuthorizedCalibration, service: ServiceDep
+    body: ImportRequest, calibration_id: AuthorizedCalibration, service: ServiceDep
 ) -> ImportResponse:
     """Add runs evaluated elsewhere as finished design points, all or nothing."""
     runs = [run.model_dump() for run in body.runs]
-    return ImportResponse(imported=service.import_runs(meta, runs))
+    return ImportResponse(imported=service.import_runs(calibration_id, runs))
 
 
 @router.get(
@@ -81,16 +83,16 @@ def import_runs(
     responses={200: {"content": _CSV}, **problem_responses(401, 403, 404, 422, 503)},
 )
 def list_runs(
-    meta: AuthorizedCalibration,
+    calibration_id: AuthorizedCalibration,
     service: ServiceDep,
     state: Annotated[Literal["leased", "done", "failed", "expired"] | None, Query()] = None,
     format: Annotated[Literal["json", "csv"], Query()] = "json",
 ) -> RunsResponse | Response:
     """Every run with parameters, outputs, state and trust; ``?format=csv`` for CSV."""
-    runs = service.runs(meta, state)
+    runs = service.runs(calibration_id, state)
     if format == "json":
         return RunsResponse(runs=runs)  # type: ignore[arg-type]
-    spec = service.spec(meta)
+    spec = service.spec(calibration_id)
     outputs = [f"{o.name}[{i}]" for o in spec.observations for i in range(o.size)]
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")

@@ -120,6 +120,9 @@ class Store(Protocol):
     def close(self) -> None:
         """Release connections."""
 
+    async def aclose(self) -> None:
+        """Release the connections of the async methods (from the loop that used them)."""
+
     def startup_warnings(self) -> list[str]:
         """Configuration problems that put acknowledged data at risk."""
 
@@ -129,6 +132,9 @@ class Store(Protocol):
 
     def get_meta(self, calibration_id: str) -> CalibrationMeta | None:
         """Metadata and counters, or None when the calibration does not exist."""
+
+    async def get_meta_async(self, calibration_id: str) -> CalibrationMeta | None:
+        """`get_meta` for the event loop (every request starts with it, for the token check)."""
 
     def get_spec(self, calibration_id: str) -> str | None:
         """The spec JSON (read apart from the metadata: it can be megabytes), or None."""

@@ -14,6 +14,7 @@ from contextlib import contextmanager
 from typing import Any
 
 import redis
+import redis.asyncio as aioredis
 from redis.commands.core import Script
 
 from honing.api.store.base import (
@@ -337,6 +338,8 @@ class RedisStore:
         self._renew = self._r.register_script(_RENEW)
         self._release = self._r.register_script(_RELEASE)
         self._wait_aof: bool | None = None
+        # The async client serves the event loop that first uses it (the server's).
+        self._ar: aioredis.Redis | None = None
 
     @contextmanager
     def _guard(self) -> Iterator[None]:
@@ -380,6 +383,11 @@ class RedisStore:
 
     def close(self) -> None:
         self._r.close()
+
+    async def aclose(self) -> None:
+        if self._ar is not None:
+            await self._ar.aclose()
+            self._ar = None
 
     def startup_warnings(self) -> list[str]:
         """Check AOF, fsync and eviction settings; also decide whether WAITAOF is usable."""
@@ -462,6 +470,31 @@ class RedisStore:
         if not snapshot:
             return None
         return _meta_from(calibration_id, snapshot, queued)
+
+    async def get_meta_async(self, calibration_id: str) -> CalibrationMeta | None:
+        k = CalibrationKeys(calibration_id)
+        if self._ar is None:
+            self._ar = aioredis.Redis.from_url(
+                self._url, socket_timeout=5.0, socket_connect_timeout=2.0
+            )
+        keys = [k.meta, k.proposals, k.requeue, k.refit_lock]
+
+        async def run() -> tuple[Any, Any]:
+            assert self._ar is not None
+            pipe = self._ar.pipeline(transaction=False)
+            pipe.evalsha(self._meta.sha, len(keys), *keys, *_META_FIELDS)
+            pipe.zscore(REFIT_DUE, calibration_id)
+            return tuple(await pipe.execute())  # type: ignore[return-value]
+
+        with self._guard():
+            try:
+                snapshot, score = await run()
+            except redis.exceptions.NoScriptError:
+                await self._ar.script_load(self._meta.script)
+                snapshot, score = await run()
+        if not snapshot:
+            return None
+        return _meta_from(calibration_id, snapshot, score is not None)
 
     def get_spec(self, calibration_id: str) -> str | None:
         with self._guard():

@@ -17,6 +17,8 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
+from anyio import to_thread
+
 from honing.api.store.base import (
     CalibrationMeta,
     LeaseResult,
@@ -175,6 +177,9 @@ class SqliteStore:
             self._all.clear()
         self._local = threading.local()
 
+    async def aclose(self) -> None:
+        return None  # the async reads use the worker threads' own connections
+
     def startup_warnings(self) -> list[str]:
         return []
 
@@ -204,6 +209,10 @@ class SqliteStore:
     def get_meta(self, calibration_id: str) -> CalibrationMeta | None:
         with self._read() as db:
             return self._meta(db, calibration_id)
+
+    async def get_meta_async(self, calibration_id: str) -> CalibrationMeta | None:
+        # SQLite has no async driver: the read runs in a worker thread.
+        return await to_thread.run_sync(self.get_meta, calibration_id)
 
     @staticmethod
     def _meta(db: sqlite3.Connection, calibration_id: str) -> CalibrationMeta | None:

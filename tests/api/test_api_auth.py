@@ -87,3 +87,20 @@ def test_a_token_opens_no_route_of_b(client: AppClient) -> None:
 def test_tokens_differ_per_calibration(client: AppClient) -> None:
     tokens = {create(client).token for _ in range(5)}
     assert len(tokens) == 5 and all(len(t) >= 40 for t in tokens)
+
+
+def test_a_calibration_deleted_on_one_replica_is_gone_on_another(settings: Settings) -> None:
+    # Two apps on one store are two replicas; the second has the token hash cached from
+    # earlier requests, so only the operations themselves can notice the deletion.
+    with make_client(settings) as first, make_client(settings) as second:
+        cal = create(first)
+        (run,) = lease(second, cal)
+        assert second.get(cal.url, headers=cal.headers).status_code == 200
+        assert first.delete(cal.url, headers=cal.headers).status_code == 204
+        assert_problem(second.get(cal.url, headers=cal.headers), 404)
+        assert_problem(second.post(f"{cal.url}/runs", json={}, headers=cal.headers), 404)
+        body = {"outputs": {"y": [1.0, 2.0, 3.0], "z": [0.5]}}
+        url = f"{cal.url}/runs/{run['run_id']}"
+        assert_problem(second.put(url, json=body, headers=cal.headers), 404)
+        for path in ("/runs", "/posterior", "/posterior/samples"):
+            assert_problem(second.get(cal.url + path, headers=cal.headers), 404)

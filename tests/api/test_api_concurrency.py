@@ -35,8 +35,7 @@ def test_48_threads_lease_and_report_2000_results(store: Store) -> None:
         try:
             start.wait()
             while True:
-                meta = service.meta(calibration_id)
-                outcome = service.lease(meta, rng.randint(1, 6), f"w{seed}", 3600.0)
+                outcome = service.lease(calibration_id, rng.randint(1, 6), f"w{seed}", 3600.0)
                 if not outcome.runs:
                     return
                 with lock:
@@ -44,7 +43,9 @@ def test_48_threads_lease_and_report_2000_results(store: Store) -> None:
                         (r["run_id"], tuple(r["parameters"].values())) for r in outcome.runs
                     )
                 for run in outcome.runs:
-                    done = service.report(meta, run["run_id"], simulate(run["parameters"]), None)
+                    done = service.report(
+                        calibration_id, run["run_id"], simulate(run["parameters"]), None
+                    )
                     assert done.state == "done"
                     with lock:
                         acknowledged.append(run["run_id"])
@@ -80,8 +81,7 @@ def test_48_threads_lease_and_report_2000_results(store: Store) -> None:
 def test_concurrent_reports_of_one_run_agree(store: Store) -> None:
     service = CalibrationService(store)
     calibration_id, _, _ = service.create(SPEC)
-    meta = service.meta(calibration_id)
-    (run,) = service.lease(meta, 1, "w", 3600.0).runs
+    (run,) = service.lease(calibration_id, 1, "w", 3600.0).runs
     outputs = simulate(run["parameters"])
     different = {k: [v + 1.0 for v in vs] for k, vs in outputs.items()}
     outcomes: list[str] = []
@@ -89,7 +89,7 @@ def test_concurrent_reports_of_one_run_agree(store: Store) -> None:
 
     def send(i: int) -> None:
         try:
-            service.report(meta, run["run_id"], outputs if i % 2 else different, None)
+            service.report(calibration_id, run["run_id"], outputs if i % 2 else different, None)
             result = "same" if i % 2 else "different"
         except Exception as exc:
             result = type(exc).__name__
@@ -123,13 +123,13 @@ def test_expiring_leases_under_load_never_overlap(store: Store) -> None:
                 meta = service.meta(calibration_id)
                 if meta.queued == 0 and meta.leased == 0:
                     return  # every point handed out, and no lease outstanding
-                runs = service.lease(meta, rng.randint(1, 3), f"w{seed}", 0.5).runs
+                runs = service.lease(calibration_id, rng.randint(1, 3), f"w{seed}", 0.5).runs
                 if not runs:
                     time.sleep(0.02)
                 for run in runs:
                     if rng.random() < 0.15:
                         continue  # this worker "dies" with the lease: it must expire
-                    service.report(meta, run["run_id"], simulate(run["parameters"]), None)
+                    service.report(calibration_id, run["run_id"], simulate(run["parameters"]), None)
         except BaseException as exc:  # reported below
             errors.append(exc)
 

@@ -197,9 +197,8 @@ def test_a_refit_worker_killed_mid_fit_is_retried(store_url: str, tmp_path: Path
     store = open_store(store_url)
     service = CalibrationService(store)
     calibration_id, _, _ = service.create(SPEC)
-    meta = service.meta(calibration_id)
-    for run in service.lease(meta, SPEC["design"]["initial_runs"], "w", 3600.0).runs:
-        service.report(meta, run["run_id"], simulate(run["parameters"]), None)
+    for run in service.lease(calibration_id, SPEC["design"]["initial_runs"], "w", 3600.0).runs:
+        service.report(calibration_id, run["run_id"], simulate(run["parameters"]), None)
     assert store.refit_queue_depth() == 1
     marker = tmp_path / "fitting"
     proc = subprocess.Popen(

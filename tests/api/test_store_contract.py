@@ -1,3 +1,4 @@
+import asyncio
 import json
 
 import pytest
@@ -38,6 +39,21 @@ def test_create_and_read_back(store: Store) -> None:
     assert store.get_spec("c1") == '{"name": "s"}'
     assert store.get_meta("nope") is None and store.get_spec("nope") is None
     assert store.load_state("nope") is None
+
+
+def test_async_metadata_read_agrees_with_the_sync_one(store: Store) -> None:
+    make(store)
+    store.lease("c1", 2, "w", 10.0, 60.0, 100)
+    store.enqueue_refit("c1", 1.0)
+
+    async def read() -> tuple[object, object]:
+        try:
+            return await store.get_meta_async("c1"), await store.get_meta_async("nope")
+        finally:
+            await store.aclose()
+
+    meta, missing = asyncio.run(read())
+    assert meta == store.get_meta("c1") and missing is None
 
 
 def test_lease_hands_out_in_order_with_fresh_ids(store: Store) -> None:

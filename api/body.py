@@ -1,9 +1,12 @@
-"""Request bodies parsed and validated from bytes in one pass by pydantic-core.
+"""JSON bodies of the hot routes (lease and report), parsed and written by pydantic-core.
 
 FastAPI decodes a JSON body with the standard library, then validates the Python objects; for
 the result of a run (hundreds or thousands of numbers, on every report) pydantic's own JSON
 parser does both at several times the speed. Errors keep FastAPI's shape and locations
 (``["body", ...]``) and go through the same problem handler, so clients see no difference.
+Answers already built as response models are written straight to JSON, skipping FastAPI's
+second validation of them; the routes still declare ``response_model`` for the OpenAPI
+document.
 """
 
 from __future__ import annotations
@@ -11,11 +14,11 @@ from __future__ import annotations
 from email.message import Message
 from typing import Any, TypeVar
 
-from fastapi import Request
+from fastapi import Request, Response
 from fastapi.exceptions import RequestValidationError
 from pydantic import BaseModel, ValidationError
 
-__all__ = ["add_body_schemas", "json_body", "parse_body"]
+__all__ = ["add_body_schemas", "json_body", "json_response", "parse_body"]
 
 M = TypeVar("M", bound=BaseModel)
 
@@ -80,3 +83,8 @@ async def parse_body(request: Request, model: type[M]) -> M:
     except ValidationError as exc:
         errors = [{**e, "loc": ("body", *e["loc"])} for e in exc.errors(include_url=False)]
         raise RequestValidationError(errors) from None
+
+
+def json_response(model: BaseModel, headers: dict[str, str] | None = None) -> Response:
+    """``model`` as a 200 JSON answer."""
+    return Response(model.model_dump_json(), media_type="application/json", headers=headers)

@@ -82,13 +82,15 @@ class OutputReduction:
     def fit(
         cls, residuals: np.ndarray, weights: np.ndarray, energy: float = ENERGY_FRACTION
     ) -> OutputReduction:
-        """Fit the components from the weighted, centred residuals' Gram matrix.
+        """Fit the components from the eigenvectors of the smaller of the weighted, centred
+        residuals' two cross-product matrices.
 
-        The ``(n_runs, n_runs)`` Gram matrix ``X X^T`` is one matrix product (``O(n_runs^2
-        output_size)``, at BLAS-3 speed) and its eigenvectors give the components as
-        ``V = X^T U / s``: the thin SVD of ``X`` without an output-by-output matrix, so
-        memory stays linear in the output length. Eigenvalues are accurate to about machine
-        epsilon times the largest, far below `MIN_COMPONENT_VAR` times the scales met here.
+        With fewer outputs than runs, the components are the eigenvectors of the ``(output_size,
+        output_size)`` matrix ``X^T X``. Otherwise the ``(n_runs, n_runs)`` Gram matrix ``X X^T``
+        (one matrix product, ``O(n_runs^2 output_size)`` at BLAS-3 speed) gives them as
+        ``V = X^T U / s``: the thin SVD of ``X`` without an output-by-output matrix, so memory
+        stays linear in the output length. Both are exact; eigenvalues are accurate to about
+        machine epsilon times the largest, far below `MIN_COMPONENT_VAR` at the scales met here.
 
         Components are kept until they hold `energy` of the variance, and every component
         whose variance reaches `MIN_COMPONENT_VAR` is kept too, up to `MAX_COMPONENTS`.
@@ -96,7 +98,8 @@ class OutputReduction:
         w = np.asarray(weights, dtype=float) / np.sum(weights)
         mean = w @ residuals
         centred = (residuals - mean) * np.sqrt(w)[:, None]
-        var, u = np.linalg.eigh(centred @ centred.T)
+        by_outputs = centred.shape[1] <= centred.shape[0]
+        var, u = np.linalg.eigh(centred.T @ centred if by_outputs else centred @ centred.T)
         var, u = np.maximum(var[::-1], 0.0), u[:, ::-1]
         total = var.sum()
         k = 1
@@ -104,7 +107,11 @@ class OutputReduction:
             k = int(np.searchsorted(np.cumsum(var) / total, energy) + 1)
             k = max(k, int(np.count_nonzero(var >= MIN_COMPONENT_VAR)))
         k = max(1, min(k, MAX_COMPONENTS, int(np.count_nonzero(var > 0.0)) or 1))
-        components = centred.T @ (u[:, :k] / np.sqrt(np.maximum(var[:k], np.finfo(float).tiny)))
+        if by_outputs:
+            components = u[:, :k]
+        else:
+            scale = np.sqrt(np.maximum(var[:k], np.finfo(float).tiny))
+            components = centred.T @ (u[:, :k] / scale)
         return cls(mean=mean, components=components, residual_energy=float(var[k:].sum()))
 
     def project(self, residuals: np.ndarray) -> np.ndarray:

@@ -9,7 +9,7 @@ from typing import Annotated, Literal
 from fastapi import APIRouter, Query, Request, Response
 from starlette.concurrency import run_in_threadpool
 
-from honing.api.body import json_body, parse_body
+from honing.api.body import json_body, json_response, parse_body
 from honing.api.deps import AuthorizedCalibration, ServiceDep
 from honing.api.models import (
     ImportRequest,
@@ -37,14 +37,13 @@ def lease_runs(
     calibration_id: AuthorizedCalibration,
     service: ServiceDep,
     request: Request,
-    response: Response,
-) -> LeaseResponse:
+) -> Response:
     """Lease up to ``count`` points; an empty list comes with Retry-After while work remains."""
     seconds = body.lease_seconds or request.app.state.settings.lease_seconds
     outcome = service.lease(calibration_id, body.count, body.worker, seconds)
-    if outcome.retry_after is not None:
-        response.headers["Retry-After"] = str(outcome.retry_after)
-    return LeaseResponse(runs=outcome.runs, status=outcome.status)  # type: ignore[arg-type]
+    answer = LeaseResponse(runs=outcome.runs, status=outcome.status)  # type: ignore[arg-type]
+    retry = None if outcome.retry_after is None else {"Retry-After": str(outcome.retry_after)}
+    return json_response(answer, retry)
 
 
 @router.put(
@@ -55,13 +54,14 @@ def lease_runs(
 )
 async def report_run(
     run_id: str, request: Request, calibration_id: AuthorizedCalibration, service: ServiceDep
-) -> ReportResponse:
+) -> Response:
     """Report one run's outputs or its failure; the same result again is a no-op."""
     body = await parse_body(request, ReportRequest)
     outcome = await run_in_threadpool(
         service.report, calibration_id, run_id, body.outputs, body.error
     )
-    return ReportResponse(run_id=outcome.run_id, state=outcome.state, trust=outcome.trust)  # type: ignore[arg-type]
+    answer = ReportResponse(run_id=outcome.run_id, state=outcome.state, trust=outcome.trust)  # type: ignore[arg-type]
+    return json_response(answer)
 
 
 @router.post(

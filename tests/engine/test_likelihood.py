@@ -10,8 +10,12 @@ def _residuals(seed, n=120, size=2000, rank=6):
     return rng.normal(size=(n, rank)) @ rng.normal(size=(rank, size)), rng.uniform(0.1, 1, n)
 
 
-def test_components_match_numpy_svd():
-    x, w = _residuals(0)
+@pytest.mark.parametrize(
+    ("n", "size"),
+    [(120, 2000), (400, 60)],  # more outputs than runs (Gram route), fewer (covariance route)
+)
+def test_components_match_numpy_svd(n, size):
+    x, w = _residuals(0, n=n, size=size)
     red = OutputReduction.fit(x, w)
     # Reference: numpy.linalg.svd of the weighted, centred matrix.
     wn = w / w.sum()
@@ -19,7 +23,7 @@ def test_components_match_numpy_svd():
     _, s, vt = np.linalg.svd(centred, full_matrices=False)
     k = red.n_components
     assert k == 6  # the rank of the planted residuals
-    # Components agree up to sign; rounding of the Gram route is ~1e-12 relative here.
+    # Components agree up to sign; rounding of either route is ~1e-12 relative here.
     overlap = np.abs(np.sum(vt[:k] * red.components.T, axis=1))
     np.testing.assert_allclose(overlap, 1.0, atol=1e-9)
     np.testing.assert_allclose(red.components.T @ red.components, np.eye(k), atol=1e-12)

@@ -313,18 +313,18 @@ class CalibrationService:
     def lease(
         self, calibration_id: str, count: int, worker: str, lease_seconds: float
     ) -> LeaseOutcome:
-        """Hand out up to ``count`` points; never blocks on a refit."""
-        meta = self.meta(calibration_id)
-        status = self.status(meta)
-        if status in FINAL_STATUSES:
-            return LeaseOutcome([], status, None)
-        spec = self.spec(meta.id)
+        """Hand out up to ``count`` points; never blocks on a refit. One store step: it hands
+        out nothing once the calibration is closed, and returns the metadata for the status."""
+        spec = self.spec(calibration_id)
         result = self.store.lease(
-            meta.id, count, worker, self.clock(), lease_seconds, spec.max_runs
+            calibration_id, count, worker, self.clock(), lease_seconds, spec.max_runs
         )
+        if result.meta is None:
+            raise NotFound(f"calibration {calibration_id!r} does not exist")
+        status = self.status(result.meta)
         self._count("expired", result.expired)
         self._count("leased", len(result.runs))
-        self._remember_leased(meta.id, result.runs)
+        self._remember_leased(calibration_id, result.runs)
         runs = [
             {
                 "run_id": r.run_id,
@@ -333,7 +333,8 @@ class CalibrationService:
             }
             for r in result.runs
         ]
-        return LeaseOutcome(runs, status, None if runs else RETRY_AFTER_SECONDS)
+        retry = None if runs or status in FINAL_STATUSES else RETRY_AFTER_SECONDS
+        return LeaseOutcome(runs, status, retry)
 
     def report(
         self,

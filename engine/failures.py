@@ -18,6 +18,13 @@ __all__ = ["FailureModel"]
 
 #: Inverse regularisation strength of the logistic fit (scikit-learn's default).
 REGULARISATION_C = 10000.0
+#: Convergence tolerance and iteration cap of the logistic fit. Failures are usually a sharp
+#: boundary, so the classes are nearly separable and the likelihood is flat along the boundary's
+#: steepness: stopped at scikit-learn's default tolerance (1e-4), the fitted boundary depended
+#: on where the optimiser happened to stop, and a rounding-level change of the inputs moved a
+#: posterior mean by 0.1 sd. Fitted to convergence, it does not.
+TOLERANCE = 1e-10
+MAX_ITER = 20_000
 #: Smallest success probability used in the log, so a point is never ruled out entirely.
 MIN_SUCCESS = 1e-6
 
@@ -41,7 +48,7 @@ class FailureModel:
         if not failed.any() or failed.all():
             return None
         features = _features((xi - center) / scale)
-        model = LogisticRegression(C=REGULARISATION_C, max_iter=2000)
+        model = LogisticRegression(C=REGULARISATION_C, max_iter=MAX_ITER, tol=TOLERANCE)
         model.fit(features, (~failed).astype(int))
         return cls(center, scale, model.coef_[0].copy(), float(model.intercept_[0]))
 

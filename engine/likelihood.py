@@ -34,6 +34,13 @@ ENERGY_FRACTION = 0.9999
 MIN_COMPONENT_VAR = 1e-4
 #: Cap on the number of components, which bounds the surrogate's cost for long outputs.
 MAX_COMPONENTS = 30
+#: Columns of the random range of the large-matrix route: `MAX_COMPONENTS` plus 10 oversamples
+#: (Halko, Martinsson and Tropp, 2011, SIAM Review 53(2), sec. 4.2, suggest 5 to 10).
+RANGE_SIZE = MAX_COMPONENTS + 10
+#: Both sides of the residual matrix longer than this many times `RANGE_SIZE` take the random
+#: range: there its four passes over the matrix cost a quarter or less of an exact
+#: cross-product.
+RANDOM_ROUTE_FACTOR = 16
 
 
 def whiten(spec: CalibrationSpec, outputs: np.ndarray) -> np.ndarray:
@@ -82,37 +89,27 @@ class OutputReduction:
     def fit(
         cls, residuals: np.ndarray, weights: np.ndarray, energy: float = ENERGY_FRACTION
     ) -> OutputReduction:
-        """Fit the components from the eigenvectors of the smaller of the weighted, centred
-        residuals' two cross-product matrices.
-
-        With fewer outputs than runs, the components are the eigenvectors of the ``(output_size,
-        output_size)`` matrix ``X^T X``. Otherwise the ``(n_runs, n_runs)`` Gram matrix ``X X^T``
-        (one matrix product, ``O(n_runs^2 output_size)`` at BLAS-3 speed) gives them as
-        ``V = X^T U / s``: the thin SVD of ``X`` without an output-by-output matrix, so memory
-        stays linear in the output length. Both are exact; eigenvalues are accurate to about
-        machine epsilon times the largest, far below `MIN_COMPONENT_VAR` at the scales met here.
+        """Fit the components to the weighted, centred residuals ``X``.
 
         Components are kept until they hold `energy` of the variance, and every component
-        whose variance reaches `MIN_COMPONENT_VAR` is kept too, up to `MAX_COMPONENTS`.
+        whose variance reaches `MIN_COMPONENT_VAR` is kept too, up to `MAX_COMPONENTS`. What
+        they miss is `residual_energy`, the total sum of squares less the variance the kept
+        components actually hold, so the truncation is accounted for exactly whichever route
+        found them (see `_spectrum`).
         """
         w = np.asarray(weights, dtype=float) / np.sum(weights)
         mean = w @ residuals
         centred = (residuals - mean) * np.sqrt(w)[:, None]
-        by_outputs = centred.shape[1] <= centred.shape[0]
-        var, u = np.linalg.eigh(centred.T @ centred if by_outputs else centred @ centred.T)
-        var, u = np.maximum(var[::-1], 0.0), u[:, ::-1]
-        total = var.sum()
+        var, vectors = _spectrum(centred)
+        total = float(np.sum(centred * centred))
         k = 1
         if total > 0.0:
             k = int(np.searchsorted(np.cumsum(var) / total, energy) + 1)
             k = max(k, int(np.count_nonzero(var >= MIN_COMPONENT_VAR)))
-        k = max(1, min(k, MAX_COMPONENTS, int(np.count_nonzero(var > 0.0)) or 1))
-        if by_outputs:
-            components = u[:, :k]
-        else:
-            scale = np.sqrt(np.maximum(var[:k], np.finfo(float).tiny))
-            components = centred.T @ (u[:, :k] / scale)
-        return cls(mean=mean, components=components, residual_energy=float(var[k:].sum()))
+        k = max(1, min(k, MAX_COMPONENTS, var.size, int(np.count_nonzero(var > 0.0)) or 1))
+        components = vectors[:, :k]
+        kept = float(np.sum((centred @ components) ** 2))  # exact for this basis, any route
+        return cls(mean=mean, components=components, residual_energy=max(total - kept, 0.0))
 
     def project(self, residuals: np.ndarray) -> np.ndarray:
         """Component scores, shape ``(n_runs, n_components)``."""
@@ -200,3 +197,50 @@ def noise_scale_draws(misfit: np.ndarray, n_values: int, rng: np.random.Generato
     ndarray, shape (n_points,)
     """
     return np.sqrt(np.asarray(misfit) / rng.chisquare(n_values, size=np.shape(misfit)))
+
+
+def _spectrum(centred: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Variances (descending) and orthonormal output-space directions of ``centred``.
+
+    Parameters
+    ----------
+    centred : ndarray, shape (n_runs, output_size)
+
+    Returns
+    -------
+    var : ndarray, shape (r,)
+        The leading ``r = min(MAX_COMPONENTS, n_runs, output_size)`` variances.
+    vectors : ndarray, shape (output_size, r)
+
+    Notes
+    -----
+    Three routes, by shape. With fewer outputs than runs: the eigenvectors of ``X^T X``. With
+    fewer runs: those of the Gram matrix ``X X^T``, as ``V = X^T U / s``, so that memory stays
+    linear in the output length. Both are exact, with eigenvalues accurate to about machine
+    epsilon times the largest, far below `MIN_COMPONENT_VAR` at the scales met here. When
+    both sides are long (many runs of long series), an exact cross-product costs
+    ``O(n_runs output_size min(n_runs, output_size))``; there the directions come from the
+    span of ``X`` times `RANGE_SIZE` Gaussian vectors (the randomized range finder of Halko,
+    Martinsson and Tropp, 2011, Algorithm 4.1), ``O(n_runs output_size RANGE_SIZE)``: for the
+    smooth, fast-decaying spectra of simulator outputs the leading components agree with the
+    exact ones, and whatever the range misses is carried in `residual_energy` all the same.
+    The Gaussian vectors come from a fixed seed, so a fit is reproducible.
+    """
+    n, m = centred.shape
+    if min(n, m) > RANDOM_ROUTE_FACTOR * RANGE_SIZE:
+        probe = np.random.default_rng(0).standard_normal((m, RANGE_SIZE))
+        basis, _ = np.linalg.qr(centred @ probe)  # (n, RANGE_SIZE): the range of X
+        projected = basis.T @ centred  # (RANGE_SIZE, m)
+        var, u = _descending(projected @ projected.T)
+        return var, projected.T @ (u / np.sqrt(np.maximum(var, np.finfo(float).tiny)))
+    if m <= n:
+        return _descending(centred.T @ centred)
+    var, u = _descending(centred @ centred.T)
+    return var, centred.T @ (u / np.sqrt(np.maximum(var, np.finfo(float).tiny)))
+
+
+def _descending(gram: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The leading `MAX_COMPONENTS` eigenpairs of a symmetric matrix, largest first."""
+    var, vectors = np.linalg.eigh(gram)
+    r = min(MAX_COMPONENTS, var.size)
+    return np.maximum(var[::-1][:r], 0.0), vectors[:, ::-1][:, :r]

@@ -20,6 +20,7 @@ The round, in order:
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 import numpy as np
@@ -570,6 +571,8 @@ def _json_safe(value: Any) -> Any:
     if isinstance(value, dict):
         return {k: _json_safe(v) for k, v in value.items()}
     if isinstance(value, list | tuple):
+        if set(map(type, value)) == {float} and all(map(math.isfinite, value)):
+            return list(value)  # a band carried over from an earlier round: checked at C speed
         return [_json_safe(v) for v in value]
     if isinstance(value, np.ndarray):
         if value.dtype.kind == "f" and np.isfinite(value).all():

@@ -103,10 +103,12 @@ class RunRecord:
 
 @dataclass(frozen=True)
 class LeaseResult:
-    """What one lease step did: the new runs, and how many overdue leases it expired."""
+    """What one lease step did: the new runs, how many overdue leases it expired, and the
+    calibration's metadata afterwards (None when there is no such calibration)."""
 
     runs: list[RunRecord]
     expired: int
+    meta: CalibrationMeta | None
 
 
 class Store(Protocol):
@@ -166,7 +168,8 @@ class Store(Protocol):
         lease_seconds: float,
         max_runs: int,
     ) -> LeaseResult:
-        """Expire overdue leases, then hand out up to ``count`` points (re-queued first)."""
+        """Expire overdue leases, then hand out up to ``count`` points (re-queued first)
+        while the calibration is open: engine status "collecting" and no failure recorded."""
 
     def expire(self, calibration_id: str, now: float) -> int:
         """Expire overdue leases; returns how many."""

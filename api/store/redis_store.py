@@ -93,22 +93,28 @@ return expire_overdue(KEYS[1], KEYS[3], KEYS[2], ARGV[1], ARGV[2])
 """
 )
 
-# KEYS: 1 meta, 2 proposals, 3 requeue, 4 leases, 5 runs
-# ARGV: 1 run key prefix, 2 now, 3 count, 4 worker, 5 lease expiry time, 6 max_runs
-# Expires overdue leases, then hands out up to count points: re-queued ones first, then the
-# current proposals, never more than max_runs - done - failed - leased. Each new run gets
-# id "r<seq>", state "leased", epoch 1.
-# Returns {expired, rid_1, seq_1, point_1, rid_2, ...}, or {-1} when the calibration is gone.
+# KEYS: 1 meta, 2 proposals, 3 requeue, 4 leases, 5 runs, 6 refit lock
+# ARGV: 1 run key prefix, 2 now, 3 count, 4 worker, 5 lease expiry time, 6 max_runs,
+#       7... the metadata fields to return
+# Expires overdue leases, then, while the calibration is open (engine_status "collecting", no
+# failed_error), hands out up to count points: re-queued ones first, then the current
+# proposals, never more than max_runs - done - failed - leased. Each new run gets id
+# "r<seq>", state "leased", epoch 1.
+# Returns {expired, snapshot, rid_1, seq_1, point_1, rid_2, ...} (snapshot: the metadata
+# afterwards, as _META returns it), or {-1} when the calibration is gone.
 _LEASE = (
     _WRITES
     + _EXPIRE_FN
+    + _SNAPSHOT_FN
     + """
 local meta = KEYS[1]
 if redis.call('EXISTS', meta) == 0 then return {-1} end
-local out = {expire_overdue(meta, KEYS[4], KEYS[3], ARGV[1], ARGV[2])}
-local c = redis.call('HMGET', meta, 'done', 'failed', 'leased')
+local expired = expire_overdue(meta, KEYS[4], KEYS[3], ARGV[1], ARGV[2])
+local c = redis.call('HMGET', meta, 'done', 'failed', 'leased', 'engine_status', 'failed_error')
 local room = tonumber(ARGV[6]) - tonumber(c[1]) - tonumber(c[2]) - tonumber(c[3])
+if c[4] ~= 'collecting' or c[5] then room = 0 end
 local n = math.min(tonumber(ARGV[3]), room)
+local out = {expired, false}
 for _ = 1, n do
   local point = redis.call('LPOP', KEYS[3])
   if not point then point = redis.call('LPOP', KEYS[2]) end
@@ -125,6 +131,7 @@ for _ = 1, n do
   table.insert(out, seq)
   table.insert(out, point)
 end
+out[2] = meta_snapshot(meta, KEYS[2], KEYS[3], KEYS[6], ARGV, 7)
 return out
 """
 )
@@ -549,15 +556,14 @@ class RedisStore:
     ) -> LeaseResult:
         k = CalibrationKeys(calibration_id)
         expires = now + lease_seconds
+        keys = [k.meta, k.proposals, k.requeue, k.leases, k.runs, k.refit_lock]
+        args = [k.run_prefix, _time(now), count, worker, _time(expires), max_runs]
         with self._guard():
-            out = self._lease(
-                keys=[k.meta, k.proposals, k.requeue, k.leases, k.runs],
-                args=[k.run_prefix, _time(now), count, worker, _time(expires), max_runs],
-            )
+            out, queued = self._with_queue_entry(self._lease, keys, [*args, *_META_FIELDS], k.id)
         if int(out[0]) < 0:
-            return LeaseResult([], 0)
+            return LeaseResult([], 0, None)
         runs = []
-        for i in range(1, len(out), 3):
+        for i in range(2, len(out), 3):
             fields = {
                 "run_id": str(_s(out[i])),
                 "seq": str(out[i + 1]),
@@ -569,7 +575,7 @@ class RedisStore:
                 "point": str(_s(out[i + 2])),
             }
             runs.append(RunRecord.from_fields(fields))
-        return LeaseResult(runs, int(out[0]))
+        return LeaseResult(runs, int(out[0]), _meta_from(calibration_id, out[1], queued))
 
     def expire(self, calibration_id: str, now: float) -> int:
         k = CalibrationKeys(calibration_id)

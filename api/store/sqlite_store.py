@@ -334,17 +334,20 @@ class SqliteStore:
         expires = now + lease_seconds
         with self._write() as db:
             row = db.execute(
-                "SELECT seq, done, failed, leased FROM calibrations WHERE id = ?",
+                "SELECT seq, done, failed, engine_status, failed_error FROM calibrations "
+                "WHERE id = ?",
                 (calibration_id,),
             ).fetchone()
             if row is None:
-                return LeaseResult([], 0)
+                return LeaseResult([], 0, None)
             expired = self._expire_overdue(db, calibration_id, now)
-            seq, done, failed, _ = row
+            seq, done, failed, engine_status, failed_error = row
             (leased,) = db.execute(
                 "SELECT leased FROM calibrations WHERE id = ?", (calibration_id,)
             ).fetchone()
             room = max(0, min(count, max_runs - done - failed - leased))
+            if engine_status != "collecting" or failed_error:
+                room = 0
             points = db.execute(
                 "SELECT pos, point FROM queue WHERE calibration_id = ? ORDER BY kind, pos LIMIT ?",
                 (calibration_id, room),
@@ -378,7 +381,7 @@ class SqliteStore:
                 "UPDATE calibrations SET seq = ?, leased = leased + ? WHERE id = ?",
                 (seq, len(runs), calibration_id),
             )
-        return LeaseResult(runs, expired)
+            return LeaseResult(runs, expired, self._meta(db, calibration_id))
 
     def expire(self, calibration_id: str, now: float) -> int:
         with self._write() as db:

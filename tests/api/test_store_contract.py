@@ -230,5 +230,22 @@ def test_refit_failures_retry_then_fail(store: Store) -> None:
 
 @pytest.mark.parametrize("count", [0, 1])
 def test_lease_unknown_calibration_is_empty(store: Store, count: int) -> None:
-    assert store.lease("missing", count, "w", 0.0, 60.0, 100).runs == []
+    result = store.lease("missing", count, "w", 0.0, 60.0, 100)
+    assert result.runs == [] and result.meta is None
     assert store.get_meta("missing") is None
+
+
+def test_lease_returns_the_metadata_and_stops_once_closed(store: Store) -> None:
+    make(store)
+    result = store.lease("c1", 2, "w", 0.0, 60.0, 100)
+    assert result.meta == store.get_meta("c1")
+    assert result.meta is not None and (result.meta.leased, result.meta.queued) == (2, 3)
+    # Converged (a state swap with a final engine status): nothing more is handed out.
+    assert store.swap_state("c1", 1, b"s2", 1, "converged", [point(9)])
+    closed = store.lease("c1", 5, "w", 1.0, 60.0, 100)
+    assert closed.runs == [] and closed.meta is not None
+    assert closed.meta.engine_status == "converged" and closed.meta.queued == 1
+    # Failed (refits kept failing): likewise.
+    make(store, "c2")
+    assert store.record_refit_failure("c2", "boom", 1, 5.0)
+    assert store.lease("c2", 5, "w", 1.0, 60.0, 100).runs == []

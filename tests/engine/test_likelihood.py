@@ -12,7 +12,8 @@ def _residuals(seed, n=120, size=2000, rank=6):
 
 @pytest.mark.parametrize(
     ("n", "size"),
-    [(120, 2000), (400, 60)],  # more outputs than runs (Gram route), fewer (covariance route)
+    # more outputs than runs (Gram route), fewer (covariance route), both long (random range)
+    [(120, 2000), (400, 60), (700, 800)],
 )
 def test_components_match_numpy_svd(n, size):
     x, w = _residuals(0, n=n, size=size)
@@ -28,6 +29,31 @@ def test_components_match_numpy_svd(n, size):
     np.testing.assert_allclose(overlap, 1.0, atol=1e-9)
     np.testing.assert_allclose(red.components.T @ red.components, np.eye(k), atol=1e-12)
     assert red.residual_energy == pytest.approx(np.sum(s[k:] ** 2), abs=1e-8)
+
+
+def test_random_range_route_is_near_optimal_and_accounts_exactly():
+    # A spectrum with a slow tail: singular values 0.7^j, j = 0..49, on random orthonormal
+    # directions, so the leading components are not exactly low rank.
+    rng = np.random.default_rng(3)
+    n, size, r = 700, 800, 50
+    left, _ = np.linalg.qr(rng.normal(size=(n, r)))
+    right, _ = np.linalg.qr(rng.normal(size=(size, r)))
+    x = (left * 0.7 ** np.arange(r)) @ right.T * np.sqrt(n)
+    red = OutputReduction.fit(x, np.ones(n))
+    centred = (x - x.mean(axis=0)) / np.sqrt(n)
+    _, s, _ = np.linalg.svd(centred, full_matrices=False)
+    k = red.n_components
+    v = red.components
+    np.testing.assert_allclose(v.T @ v, np.eye(k), atol=1e-10)
+    # What the components miss is exactly what residual_energy says (the truncation is
+    # accounted for, whatever the basis): rounding only.
+    missed = np.sum((centred - centred @ v @ v.T) ** 2)
+    assert red.residual_energy == pytest.approx(missed, rel=1e-9, abs=1e-12)
+    # Near-optimal: Halko, Martinsson and Tropp (2011), Thm 10.6, bound the range error by a
+    # small multiple of the singular values past k + oversampling, here 0.7^40 ~ 6e-7 of the
+    # top one: the energy kept is within 1e-9 of the best rank-k energy (relative).
+    kept = np.sum(centred**2) - red.residual_energy
+    assert kept == pytest.approx(np.sum(s[:k] ** 2), rel=1e-9)
 
 
 def test_misfit_from_scores_equals_full_sum_of_squares():

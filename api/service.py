@@ -47,6 +47,8 @@ FINAL_STATUSES = frozenset({"converged", "budget_exhausted", "failed"})
 _CACHE_SIZE = 128
 #: Runs leased by this instance, remembered so their report need not read them back first.
 _LEASED_CACHE_SIZE = 20_000
+#: Calibrations whose token hash is remembered (64 bytes each).
+_TOKEN_CACHE_SIZE = 8192
 # Ids become parts of store keys: anything else cannot name a calibration or run.
 _CALIBRATION_ID = re.compile(r"[A-Za-z0-9_-]{1,64}")
 _RUN_ID = re.compile(r"r[0-9]{1,15}")
@@ -248,7 +250,7 @@ class CalibrationService:
             expected = meta.token_hash
             with self._lock:
                 self._token_hashes[calibration_id] = expected
-                while len(self._token_hashes) > _CACHE_SIZE * 64:
+                while len(self._token_hashes) > _TOKEN_CACHE_SIZE:
                     self._token_hashes.popitem(last=False)
         check_token(token, expected)
         return calibration_id
@@ -290,7 +292,7 @@ class CalibrationService:
         meta = self.meta(calibration_id)
         return {
             "id": meta.id,
-            "name": self.spec(meta.id).name,
+            "name": self.spec(calibration_id).name,
             "status": self.status(meta),
             "round": meta.round,
             "runs_completed": meta.done,
@@ -299,7 +301,7 @@ class CalibrationService:
             "runs_queued": meta.queued,
             "created_at": rfc3339(meta.created_at),
             "error": meta.failed_error,
-            "spec": self.spec(meta.id).to_dict(),
+            "spec": self.spec(calibration_id).to_dict(),
         }
 
     def delete(self, calibration_id: str) -> None:
@@ -430,6 +432,9 @@ class CalibrationService:
     def runs(self, calibration_id: str, state: str | None = None) -> list[dict[str, Any]]:
         """Every run (optionally in one state) as API dicts, in creation order."""
         self.meta(calibration_id)  # 404 for a calibration deleted meanwhile
+        return self._run_views(calibration_id, state)
+
+    def _run_views(self, calibration_id: str, state: str | None = None) -> list[dict[str, Any]]:
         return [self.run_view(r) for r in self.store.list_runs(calibration_id, state)]
 
     @staticmethod
@@ -466,7 +471,7 @@ class CalibrationService:
     def samples(self, calibration_id: str, count: int) -> tuple[list[str], np.ndarray]:
         """Up to ``count`` posterior draws with their column names."""
         meta = self.meta(calibration_id)
-        names, draws = posterior_samples(self.spec(meta.id), self.state(meta), count)
+        names, draws = posterior_samples(self.spec(calibration_id), self.state(meta), count)
         return list(names), np.asarray(draws, dtype=float)
 
     def report_inputs(
@@ -474,4 +479,4 @@ class CalibrationService:
     ) -> tuple[CalibrationSpec, EngineState, list[dict[str, Any]]]:
         """What the HTML report needs: spec, state and runs."""
         meta = self.meta(calibration_id)
-        return self.spec(meta.id), self.state(meta), self.runs(meta.id)
+        return self.spec(calibration_id), self.state(meta), self._run_views(calibration_id)

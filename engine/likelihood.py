@@ -231,12 +231,16 @@ def _spectrum(centred: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         probe = np.random.default_rng(0).standard_normal((m, RANGE_SIZE))
         basis, _ = np.linalg.qr(centred @ probe)  # (n, RANGE_SIZE): the range of X
         projected = basis.T @ centred  # (RANGE_SIZE, m)
-        var, u = _descending(projected @ projected.T)
-        return var, projected.T @ (u / np.sqrt(np.maximum(var, np.finfo(float).tiny)))
+        return _right_vectors(projected)
     if m <= n:
         return _descending(centred.T @ centred)
-    var, u = _descending(centred @ centred.T)
-    return var, centred.T @ (u / np.sqrt(np.maximum(var, np.finfo(float).tiny)))
+    return _right_vectors(centred)
+
+
+def _right_vectors(matrix: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Leading eigenpairs of ``A^T A`` from those of the smaller ``A A^T``: ``V = A^T U / s``."""
+    var, u = _descending(matrix @ matrix.T)
+    return var, matrix.T @ (u / np.sqrt(np.maximum(var, np.finfo(float).tiny)))
 
 
 def _descending(gram: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -112,8 +112,8 @@ def sample_posterior(
     ----------
     .. [1] Foreman-Mackey, D., Hogg, D. W., Lang, D., Goodman, J. (2013). emcee: The MCMC
        Hammer. PASP 125, 306-312.
-    .. [2] ter Braak, C. J. F., Vrugt, J. A. (2008). Differential Evolution Markov Chain with
-       snooker updater and fewer chains. Stat. Comput. 18, 435-446.
+    .. [2] ter Braak, C. J. F. (2006). A Markov chain Monte Carlo version of the genetic
+       algorithm Differential Evolution. Stat. Comput. 16, 239-249.
     .. [3] Tierney, L. (1994). Markov chains for exploring posterior distributions. Ann.
        Statist. 22, 1701-1728 (independence Metropolis-Hastings).
     """
@@ -121,11 +121,11 @@ def sample_posterior(
     if walkers < 2 * dim or walkers % 2:
         raise ValueError(f"need an even number of walkers >= {2 * dim}, got {walkers}")
     # Differential-evolution moves mix faster than the stretch move on the narrow, correlated
-    # posteriors met here; the snooker share helps across curved ridges (ter Braak and Vrugt).
-    moves: list[tuple[emcee.moves.Move, float]] = [
-        (emcee.moves.DEMove(), 0.8),
-        (emcee.moves.DESnookerMove(), 0.2),
-    ]
+    # posteriors met here. emcee's DESnookerMove (3.1.6) is not used: on a 15-d standard
+    # normal it gave sd 0.76 alone and 0.92 in a 0.8/0.2 mix with DEMove (64 walkers, 20,000
+    # steps), so it does not leave the target invariant; tests/engine/test_sampling.py checks
+    # the moves kept here against exact Gaussian moments.
+    moves: list[tuple[emcee.moves.Move, float]] = [(emcee.moves.DEMove(), 1.0)]
     if proposal is not None:
         moves = [(independence_move(proposal), 0.5), (emcee.moves.DEMove(), 0.5)]
     sampler = emcee.EnsembleSampler(walkers, dim, log_prob, moves=moves, vectorize=True)

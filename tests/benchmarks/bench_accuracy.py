@@ -213,7 +213,7 @@ def run_emcee(
         walkers,
         dim,
         log_post,
-        moves=[(emcee.moves.DEMove(), 0.8), (emcee.moves.DESnookerMove(), 0.2)],
+        moves=emcee.moves.DEMove(),  # not DESnookerMove: see honing.engine.sampling
         vectorize=True,
     )
     state = emcee.State(start_pts, random_state=np.random.RandomState(seed).get_state())

@@ -8,7 +8,7 @@ state bit for bit.
 The round, in order:
 
 1. keep the newest `retain_fraction` of successful runs (at least `retained_floor`), each
-   weighted by its trust index;
+   weighted by its trust index and by its proximity to the previous posterior;
 2. score the previous surrogate on the runs finished since it was fitted (validation error);
 3. fit the output reduction and a sparse expansion per component in a frame local to the
    retained runs;
@@ -24,6 +24,7 @@ import math
 from typing import Any
 
 import numpy as np
+from scipy import stats
 
 from honing.engine.design import initial_design, select_batch
 from honing.engine.diagnostics import (
@@ -45,6 +46,7 @@ from honing.engine.surrogate import Frame, Surrogate, fit_surrogate
 __all__ = [
     "posterior_samples",
     "prediction_error",
+    "proximity_weight",
     "refit",
     "refit_due",
     "retained_floor",
@@ -52,6 +54,9 @@ __all__ = [
     "trust_index",
 ]
 
+#: Probability of the previous posterior's Gaussian region inside which runs keep their full
+#: fit weight (`proximity_weight`).
+BULK_PROBABILITY = 0.99
 #: Prior draws behind the round-0 summary.
 PRIOR_DRAWS = 4000
 #: Posterior draws pushed through the surrogate for the predictive bands.
@@ -65,6 +70,36 @@ PREDICTIVE_DRAWS = 400
 PRIOR_MISS_SHARE = 0.25
 #: Histogram bins for the prior-to-posterior divergence of each marginal.
 KL_BINS = 40
+
+
+def proximity_weight(mean: np.ndarray, cov: np.ndarray, xi: np.ndarray) -> np.ndarray:
+    """Fit weight of runs by where they lie against the previous posterior.
+
+    1 inside the `BULK_PROBABILITY` region of the previous posterior's Gaussian fit (squared
+    Mahalanobis distance under the chi-square quantile ``q``), ``q / d^2`` beyond it. The
+    surrogate only has to be accurate where the posterior has mass: early design points and
+    defensive draws far out still shape the fit, but no longer take its terms from the bulk.
+
+    Parameters
+    ----------
+    mean : ndarray, shape (dim,)
+    cov : ndarray, shape (dim, dim)
+        The previous posterior's Gaussian fit in reference coordinates.
+    xi : ndarray, shape (n, dim)
+        Runs in reference coordinates.
+
+    Returns
+    -------
+    ndarray, shape (n,)
+    """
+    dim = mean.size
+    try:
+        chol = np.linalg.cholesky(cov + 1e-12 * np.trace(cov) / dim * np.eye(dim))
+    except np.linalg.LinAlgError:  # a degenerate fit says nothing about nearness
+        return np.ones(xi.shape[0])
+    d2 = np.sum(np.linalg.solve(chol, (xi - mean).T) ** 2, axis=0)
+    bulk = float(stats.chi2.ppf(BULK_PROBABILITY, dim))
+    return np.minimum(1.0, bulk / np.maximum(d2, 1e-300))
 
 
 def retained_floor(spec: CalibrationSpec) -> int:
@@ -195,11 +230,16 @@ def refit(
     kept = order[-keep:]
     residuals = whiten(spec, runs.outputs[kept])
     weights = np.clip(runs.trust[kept], 1e-12, 1.0)
+    # After the first fit, runs follow the posterior: weight them by nearness to it and
+    # decorrelate the frame; the first fit sees the initial design only.
+    focused = "post_mean" in state.arrays
+    if focused:
+        previous = state.arrays["post_mean"], state.arrays["post_cov"]
+        weights = weights * proximity_weight(*previous, xi_all[kept])
+    frame = Frame.local(xi_all[kept], weights, decorrelate=focused)
     validation = _validation_error(state, runs)
 
-    surrogate = fit_surrogate(
-        xi_all[kept], residuals, weights, Frame.local(xi_all[kept], weights), spec.max_degree
-    )
+    surrogate = fit_surrogate(xi_all[kept], residuals, weights, frame, spec.max_degree)
     model_error = _model_error(surrogate, kept >= state.runs_at_fit)
     if not widen:
         model_error = 0.0

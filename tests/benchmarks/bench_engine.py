@@ -6,7 +6,10 @@ and how the time scales with runs and output length. Run:
 
     .venv/bin/python tests/benchmarks/bench_engine.py [--repeats 5] [--long]
 
-Targets (not asserted): median under 2 s, peak memory under 300 MB on a 2-core machine.
+Targets (not asserted): median under 2 s, peak memory under 300 MB on a 2-core machine; with
+``--long``, a refit on 3 x 5000 outputs under twice the cost of one on 3 x 50 (the ratio line).
+CPU seconds (`time.process_time`, all threads) are printed beside wall seconds: on a shared
+machine they move less with what else runs.
 """
 
 from __future__ import annotations
@@ -71,11 +74,12 @@ def runs_near(model, truth, n: int, spread: float, seed: int = 1) -> RunTable:
 
 def time_refit(spec, runs, repeats: int) -> dict:
     state = refit(spec, start(spec), runs)  # a warm state, as later rounds have
-    times = []
+    times, cpu = [], []
     for _ in range(repeats):
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.process_time()
         refit(spec, state, runs)
         times.append(time.perf_counter() - t0)
+        cpu.append(time.process_time() - c0)
     tracemalloc.start()
     new = refit(spec, state, runs)
     _, peak = tracemalloc.get_traced_memory()
@@ -86,6 +90,7 @@ def time_refit(spec, runs, repeats: int) -> dict:
         "outputs": spec.output_size,
         "median_s": float(np.median(times)),
         "min_s": float(np.min(times)),
+        "median_cpu_s": float(np.median(cpu)),
         "peak_traced_mb": peak / 2**20,
         "terms": diag["surrogate_terms"],
         "components": diag["surrogate_components"],
@@ -107,13 +112,24 @@ def main() -> None:
         spec, model, truth = scenario(15, 3, length)
         rows.append(time_refit(spec, runs_near(model, truth, n_runs, 0.05), args.repeats))
         print(json.dumps(rows[-1]), flush=True)
-    print("\n| runs | outputs | median s | min s | peak MB | terms | comps | steps | tau | ess |")
-    print("| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |")
+    print(
+        "\n| runs | outputs | median s | min s | median CPU s | peak MB | terms | comps | steps "
+        "| tau | ess |"
+    )
+    print("| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |")
     for r in rows:
         print(
             f"| {r['runs']} | {r['outputs']} | {r['median_s']:.2f} | {r['min_s']:.2f} | "
+            f"{r['median_cpu_s']:.2f} | "
             f"{r['peak_traced_mb']:.0f} | {r['terms']} | {r['components']} | "
             f"{r['chain_steps']} | {r['tau_max']:.1f} | {r['ess_min']:.0f} |"
+        )
+    if args.long:
+        short, long = rows[3], rows[4]
+        print(
+            f"\nlong/short ({long['outputs']} vs {short['outputs']} outputs, 1000 runs): "
+            f"wall {long['median_s'] / short['median_s']:.2f}, "
+            f"CPU {long['median_cpu_s'] / short['median_cpu_s']:.2f} (target < 2)"
         )
 
 

@@ -4,11 +4,12 @@ import emcee
 import numpy as np
 import pytest
 from scipy import integrate
+from scipy.spatial.distance import mahalanobis
 
 from honing.engine.diagnostics import gaussian_kl
 from honing.engine.errors import ConflictError
 from honing.engine.loop import CalibrationLoop
-from honing.engine.rounds import refit
+from honing.engine.rounds import proximity_weight, refit
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import state_from_bytes, state_to_bytes
 
@@ -213,3 +214,25 @@ def test_budget_is_never_exceeded_and_reported():
     assert loop.status in ("converged", "budget_exhausted")
     if loop.status == "budget_exhausted":
         assert len(loop.finished) == spec.max_runs
+
+
+def test_proximity_weight_follows_the_previous_posterior():
+    # Squared Mahalanobis distances computed independently with scipy.spatial.distance, and the
+    # 99% radius of a 3-d Gaussian from the chi-square quantile (11.345, the 0.01 point for
+    # 3 degrees of freedom in the handbook table, Abramowitz and Stegun 1964, table 26.8;
+    # quoted from memory): weight 1 inside, q / d^2 outside.
+
+    rng = np.random.default_rng(5)
+    mean = np.array([0.5, -1.0, 2.0])
+    root = rng.normal(size=(3, 3))
+    cov = root @ root.T + 0.1 * np.eye(3)
+    xi = mean + rng.normal(size=(200, 3)) @ np.linalg.cholesky(cov).T * 4.0
+    found = proximity_weight(mean, cov, xi)
+    d2 = np.array([mahalanobis(x, mean, np.linalg.inv(cov)) ** 2 for x in xi])
+    q = 11.345
+    inside = d2 < q - 1e-3
+    outside = d2 > q + 1e-3
+    assert inside.sum() > 20 and outside.sum() > 20
+    np.testing.assert_array_equal(found[inside], 1.0)
+    # 1e-4 relative: the table gives q to five figures.
+    np.testing.assert_allclose(found[outside], q / d2[outside], rtol=1e-4)

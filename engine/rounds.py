@@ -530,7 +530,12 @@ def _predictive(
     idx = rng.choice(pool_xi.shape[0], n, replace=False)
     scale = pool[idx, spec.dim][:, None] if spec.noise_scale == "estimate" else 1.0
     sim = spec.data + spec.sd * surrogate.residuals(pool_xi[idx])
-    measured = sim + scale * spec.sd * rng.standard_normal(sim.shape)
+    # The measurement draws only feed 400-draw quantiles, whose Monte Carlo error (~10% of
+    # the band's width in its tails) dwarfs float32 rounding; single precision built in
+    # place halves the memory traffic on long outputs (3 x 5000 values: 0.40 s -> 0.24 s).
+    measured = rng.standard_normal(sim.shape, dtype=np.float32)
+    measured *= scale * spec.sd
+    np.add(measured, sim, out=measured, casting="same_kind")
     return _bands(spec, sim, measured)
 
 

@@ -15,7 +15,7 @@ and writes ``accuracy.md`` (table), ``accuracy.json`` and ``error_vs_runs_<key>.
 
     .venv/bin/python tests/benchmarks/bench_accuracy.py [--out out/benchmarks] [--only B3]
 
-About 20 minutes on a 2-core machine. Needs the stored B3 references
+About 15 minutes on a 2-core machine (896 s measured). Needs the stored B3 references
 (`make_references.py`).
 
 Figures (each against the problem's reference posterior):

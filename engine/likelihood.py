@@ -111,9 +111,17 @@ class OutputReduction:
         kept = float(np.sum((centred @ components) ** 2))  # exact for this basis, any route
         return cls(mean=mean, components=components, residual_energy=max(total - kept, 0.0))
 
-    def project(self, residuals: np.ndarray) -> np.ndarray:
-        """Component scores, shape ``(n_runs, n_components)``."""
-        return (residuals - self.mean) @ self.components
+    def project_with_loss(self, residuals: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Component scores and, per run, the squared norm of what they miss.
+
+        With orthonormal components, ``||r - mean - V t||^2 = ||r - mean||^2 - ||t||^2`` for
+        ``t = V^T (r - mean)``, so the loss needs no rebuilt residuals: on long outputs that
+        saves a pass of ``n_runs x output_size``. The difference is clipped at 0 (rounding).
+        """
+        centred = residuals - self.mean
+        scores = centred @ self.components
+        loss = np.einsum("ij,ij->i", centred, centred) - np.einsum("ij,ij->i", scores, scores)
+        return scores, np.maximum(loss, 0.0)
 
     def reconstruct(self, scores: np.ndarray) -> np.ndarray:
         """Residuals rebuilt from scores, shape ``(n_points, output_size)``."""

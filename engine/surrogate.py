@@ -193,7 +193,7 @@ def fit_surrogate(
     Surrogate
     """
     reduction = OutputReduction.fit(residuals, weights)
-    targets = reduction.project(residuals)
+    targets, dropped = reduction.project_with_loss(residuals)
     basis, fit = fit_degree_adaptive_shared(
         frame.to_local(xi),
         targets,
@@ -203,8 +203,7 @@ def fit_surrogate(
         q=Q_NORM,
         max_terms=MAX_CANDIDATE_TERMS,
     )
-    dropped = residuals - reduction.reconstruct(targets)
-    squared = fit.correction * np.sum(fit.loo_residuals**2, axis=1) + np.sum(dropped**2, axis=1)
+    squared = fit.correction * np.sum(fit.loo_residuals**2, axis=1) + dropped
     return Surrogate(
         frame=frame,
         reduction=reduction,

@@ -60,10 +60,23 @@ def test_misfit_from_scores_equals_full_sum_of_squares():
     x, w = _residuals(1)
     red = OutputReduction.fit(x, w)
     points = x[:10] + 0.1  # any residual vectors in the span, shifted off the mean
-    scores = red.project(points)
+    scores, _ = red.project_with_loss(points)
     # With nothing dropped (residual_energy ~ 0), ||mean + V c||^2 is the full sum.
     expected = np.sum(red.reconstruct(scores) ** 2, axis=1)
     np.testing.assert_allclose(red.misfit(scores), expected, rtol=1e-10)
+
+
+def test_projection_loss_equals_what_the_rebuilt_residuals_miss():
+    # Against the direct computation with numpy: ||r - (mean + V t)||^2 per point, for points
+    # off the components' span. 1e-9 relative: the norms identity subtracts sums of squares of
+    # order 1e2, leaving losses of order 1, so up to ~1e-14 * 1e2 of rounding.
+    x, w = _residuals(2)
+    red = OutputReduction.fit(x, w, energy=0.9)
+    points = x[:20] + np.random.default_rng(3).normal(size=(20, x.shape[1]))
+    scores, loss = red.project_with_loss(points)
+    direct = np.sum((points - red.reconstruct(scores)) ** 2, axis=1)
+    assert direct.min() > 0.1
+    np.testing.assert_allclose(loss, direct, rtol=1e-9)
 
 
 def test_noise_scale_marginal_matches_numerical_integral():

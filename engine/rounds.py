@@ -92,13 +92,12 @@ def proximity_weight(mean: np.ndarray, cov: np.ndarray, xi: np.ndarray) -> np.nd
     -------
     ndarray, shape (n,)
     """
-    dim = mean.size
     try:
-        chol = np.linalg.cholesky(cov + 1e-12 * np.trace(cov) / dim * np.eye(dim))
+        chol = np.linalg.cholesky(cov)  # `_cov` already adds a jitter
     except np.linalg.LinAlgError:  # a degenerate fit says nothing about nearness
         return np.ones(xi.shape[0])
     d2 = np.sum(np.linalg.solve(chol, (xi - mean).T) ** 2, axis=0)
-    bulk = float(stats.chi2.ppf(BULK_PROBABILITY, dim))
+    bulk = float(stats.chi2.ppf(BULK_PROBABILITY, mean.size))
     return np.minimum(1.0, bulk / np.maximum(d2, 1e-300))
 
 

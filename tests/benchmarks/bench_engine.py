@@ -73,14 +73,16 @@ def runs_near(model, truth, n: int, spread: float, seed: int = 1) -> RunTable:
     return RunTable(theta, outputs, np.zeros(n, bool), np.ones(n))
 
 
+def timed_refit(spec, state, runs) -> tuple[float, float]:
+    """Wall and CPU seconds of one refit."""
+    t0, c0 = time.perf_counter(), time.process_time()
+    refit(spec, state, runs)
+    return time.perf_counter() - t0, time.process_time() - c0
+
+
 def time_refit(spec, runs, repeats: int) -> dict:
     state = refit(spec, start(spec), runs)  # a warm state, as later rounds have
-    times, cpu = [], []
-    for _ in range(repeats):
-        t0, c0 = time.perf_counter(), time.process_time()
-        refit(spec, state, runs)
-        times.append(time.perf_counter() - t0)
-        cpu.append(time.process_time() - c0)
+    times, cpu = np.array([timed_refit(spec, state, runs) for _ in range(repeats)]).T
     tracemalloc.start()
     new = refit(spec, state, runs)
     _, peak = tracemalloc.get_traced_memory()
@@ -148,12 +150,8 @@ def paired_ratios(repeats: int) -> np.ndarray:
         cases.append((spec, refit(spec, start(spec), runs), runs))
     out = np.empty((repeats, 2))
     for i in range(repeats):
-        spent = []
-        for spec, state, runs in cases:
-            t0, c0 = time.perf_counter(), time.process_time()
-            refit(spec, state, runs)
-            spent.append((time.perf_counter() - t0, time.process_time() - c0))
-        out[i] = [spent[1][0] / spent[0][0], spent[1][1] / spent[0][1]]
+        short, long = (np.array(timed_refit(*case)) for case in cases)
+        out[i] = long / short
     return out
 
 

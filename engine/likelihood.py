@@ -59,7 +59,9 @@ def whiten(spec: CalibrationSpec, outputs: np.ndarray) -> np.ndarray:
         raise ValueError(
             f"outputs have {outputs.shape[-1]} values per run, expected {spec.output_size}"
         )
-    return (outputs - spec.data) / spec.sd
+    out = np.subtract(outputs, spec.data)
+    out /= spec.sd  # in place: one array of outputs' size allocated, not two
+    return out
 
 
 @dataclass
@@ -99,9 +101,10 @@ class OutputReduction:
         """
         w = np.asarray(weights, dtype=float) / np.sum(weights)
         mean = w @ residuals
-        centred = (residuals - mean) * np.sqrt(w)[:, None]
+        centred = residuals - mean
+        centred *= np.sqrt(w)[:, None]  # in place: long outputs make this the largest array
         var, vectors = _spectrum(centred)
-        total = float(np.sum(centred * centred))
+        total = float(np.vdot(centred, centred))
         k = 1
         if total > 0.0:
             k = int(np.searchsorted(np.cumsum(var) / total, energy) + 1)
@@ -126,6 +129,14 @@ class OutputReduction:
     def reconstruct(self, scores: np.ndarray) -> np.ndarray:
         """Residuals rebuilt from scores, shape ``(n_points, output_size)``."""
         return self.mean + scores @ self.components.T
+
+    def reconstruct_by_output(self, scores: np.ndarray) -> np.ndarray:
+        """Residuals rebuilt from scores in single precision, one row per output value,
+        shape ``(output_size, n_points)``: the layout per-value statistics over points
+        (predictive bands) read contiguously."""
+        out = self.components.astype(np.float32) @ scores.T.astype(np.float32)
+        out += self.mean.astype(np.float32)[:, None]
+        return out
 
     def misfit(self, scores: np.ndarray) -> np.ndarray:
         """``||w||^2`` of each point from its scores, shape ``(n_points,)``.

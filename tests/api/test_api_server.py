@@ -1,3 +1,4 @@
+import json
 import os
 import signal
 import subprocess
@@ -11,6 +12,8 @@ from pathlib import Path
 import httpx
 import pytest
 from helpers_api import SPEC, simulate
+
+from honing.api import server
 
 #: Bounded waits (not assertions on speed): how long a started server may take to answer.
 START_WAIT = 60.0
@@ -264,3 +267,40 @@ def _alive(pid: int) -> bool:
     except OSError:
         return False
     return state != "Z"
+
+
+_THREADS = """
+import json
+import honing.api.server as server
+from threadpoolctl import threadpool_info
+server.one_blas_thread_unless_set()
+print(json.dumps(sorted({pool["num_threads"] for pool in threadpool_info()})))
+"""
+
+
+def test_a_refit_process_limits_every_blas_pool_to_one_thread() -> None:
+    # Every BLAS and OpenMP pool the numerics loaded (numpy's and scipy's own OpenBLAS
+    # builds, OpenMP), as threadpoolctl reports them, in a fresh interpreter.
+    env = {k: v for k, v in os.environ.items() if k not in server.THREAD_VARIABLES}
+    out = subprocess.run(
+        [sys.executable, "-c", _THREADS],
+        env=env,
+        capture_output=True,
+        text=True,
+        check=True,
+        timeout=120,
+    )
+    assert json.loads(out.stdout) == [1]
+
+
+def test_an_operator_thread_setting_is_left_alone(monkeypatch: pytest.MonkeyPatch) -> None:
+    calls: list[int] = []
+    monkeypatch.setattr(server, "threadpool_limits", calls.append)
+    for name in server.THREAD_VARIABLES:
+        monkeypatch.delenv(name, raising=False)
+    monkeypatch.setenv("OPENBLAS_NUM_THREADS", "2")
+    server.one_blas_thread_unless_set()
+    assert calls == []
+    monkeypatch.delenv("OPENBLAS_NUM_THREADS")
+    server.one_blas_thread_unless_set()
+    assert calls == [1]

@@ -4,13 +4,15 @@
 x 200 values. Prints the median wall time over repeats, the peak traced memory of one refit,
 and how the time scales with runs and output length. Run:
 
-    .venv/bin/python tests/benchmarks/bench_engine.py [--repeats 5] [--long]
+    .venv/bin/python tests/benchmarks/bench_engine.py [--repeats 5] [--long] [--blas-threads 1]
 
 Targets (not asserted): median under 2 s, peak memory under 300 MB on a 2-core machine; with
 ``--long``, a refit on 3 x 5000 outputs under twice the cost of one on 3 x 50 (the ratio line,
 from pairs timed back to back).
 CPU seconds (`time.process_time`, all threads) are printed beside wall seconds: on a shared
-machine they move less with what else runs.
+machine they move less with what else runs. Refits run with one BLAS thread, as a refit worker
+runs them (`honing.api.server.one_blas_thread_unless_set`); ``--blas-threads 0`` leaves the
+libraries' own default (one thread per core).
 """
 
 from __future__ import annotations
@@ -21,6 +23,7 @@ import time
 import tracemalloc
 
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from honing.engine.rounds import refit, start
 from honing.engine.spec import CalibrationSpec
@@ -107,7 +110,13 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--repeats", type=int, default=5)
     parser.add_argument("--long", action="store_true", help="also 3 x 5000 outputs")
+    parser.add_argument(
+        "--blas-threads", type=int, default=1, help="BLAS threads (0: the libraries' default)"
+    )
     args = parser.parse_args()
+    if args.blas_threads > 0:
+        threadpool_limits(args.blas_threads)
+    print(f"BLAS threads: {args.blas_threads or 'library default'}", flush=True)
     rows = []
     for n_runs, length in [(1000, 200), (500, 200), (2000, 200), (1000, 50)] + (
         [(1000, 5000)] if args.long else []

@@ -3,7 +3,7 @@
 import emcee
 import numpy as np
 import pytest
-from scipy import integrate
+from scipy import integrate, stats
 from scipy.spatial.distance import mahalanobis
 
 from honing.engine.diagnostics import gaussian_kl
@@ -65,6 +65,21 @@ def test_linear_gaussian_matches_conjugate_posterior():
     # Correlations too: the sampled covariance against the conjugate one, in nats.
     pool = loop.state.pool
     assert gaussian_kl(pool.mean(0), np.cov(pool, rowvar=False), mean, cov) < 0.05
+    # The predictive distribution of a new measurement of output j is
+    # N(a_j^T m_N, sigma^2 + a_j^T S_N a_j) (Bishop, 2006, eqs. 3.58-3.59).
+    band = loop.state.summary["predictive"]["y"]
+    centre = a @ mean
+    spread = np.sqrt(sigma**2 + np.einsum("ij,jk,ik->i", a, cov, a))
+    edge = stats.norm.ppf(0.975) * spread
+    # A 2.5% quantile of 400 draws has Monte Carlo sd sqrt(p (1 - p) / 400) / phi(z_p) =
+    # 0.134 predictive sd (any text on order statistics); 0.6 is 4.5 such errors. The mean
+    # over outputs of the band's width shares the posterior draws but not the noise draws:
+    # its error is a few percent, and leaving the noise out would halve the width here.
+    np.testing.assert_array_less(np.abs(np.array(band["lo95"]) - (centre - edge)) / spread, 0.6)
+    np.testing.assert_array_less(np.abs(np.array(band["hi95"]) - (centre + edge)) / spread, 0.6)
+    width = (np.array(band["hi95"]) - np.array(band["lo95"])) / (2 * edge)
+    assert abs(width.mean() - 1.0) < 0.1
+    np.testing.assert_array_less(np.abs(np.array(band["mean"]) - centre) / spread, 0.25)
 
 
 def _decay(theta, t):

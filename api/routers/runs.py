@@ -7,7 +7,6 @@ import io
 from typing import Annotated, Literal
 
 from fastapi import APIRouter, Query, Request, Response
-from starlette.concurrency import run_in_threadpool
 
 from honing.api.body import json_body, json_response, parse_body
 from honing.api.deps import AuthorizedCalibration, ServiceDep
@@ -32,7 +31,7 @@ _CSV = {"text/csv": {"schema": {"type": "string"}}}
     response_model=LeaseResponse,
     responses=problem_responses(401, 403, 404, 413, 422, 503),
 )
-def lease_runs(
+async def lease_runs(
     body: LeaseRequest,
     calibration_id: AuthorizedCalibration,
     service: ServiceDep,
@@ -40,7 +39,7 @@ def lease_runs(
 ) -> Response:
     """Lease up to ``count`` points; an empty list comes with Retry-After while work remains."""
     seconds = body.lease_seconds or request.app.state.settings.lease_seconds
-    outcome = service.lease(calibration_id, body.count, body.worker, seconds)
+    outcome = await service.lease(calibration_id, body.count, body.worker, seconds)
     answer = LeaseResponse(runs=outcome.runs, status=outcome.status)  # type: ignore[arg-type]
     retry = None if outcome.retry_after is None else {"Retry-After": str(outcome.retry_after)}
     return json_response(answer, retry)
@@ -57,9 +56,7 @@ async def report_run(
 ) -> Response:
     """Report one run's outputs or its failure; the same result again is a no-op."""
     body = await parse_body(request, ReportRequest)
-    outcome = await run_in_threadpool(
-        service.report, calibration_id, run_id, body.outputs, body.error
-    )
+    outcome = await service.report(calibration_id, run_id, body.outputs, body.error)
     answer = ReportResponse(run_id=outcome.run_id, state=outcome.state, trust=outcome.trust)  # type: ignore[arg-type]
     return json_response(answer)
 

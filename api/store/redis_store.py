@@ -15,6 +15,7 @@ from typing import Any
 
 import redis
 import redis.asyncio as aioredis
+from anyio import to_thread
 from redis.commands.core import Script
 
 from honing.api.store.base import (
@@ -323,6 +324,64 @@ def _time(value: float) -> str:
     return repr(float(value))
 
 
+def _queue_script(
+    pipe: Any, script: Script, keys: list[str], args: list[Any], calibration_id: str, wait: bool
+) -> None:
+    """Queue on ``pipe`` (sync or async): the script, the refit queue entry, and WAITAOF."""
+    pipe.evalsha(script.sha, len(keys), *keys, *args)
+    pipe.zscore(REFIT_DUE, calibration_id)
+    if wait:
+        pipe.execute_command("WAITAOF", 1, 0, 0)
+
+
+def _lease_result(
+    calibration_id: str, out: list[Any], queued: bool, worker: str, now: float, expires: float
+) -> LeaseResult:
+    """`LeaseResult` from the lease script's answer (see `_LEASE`)."""
+    if int(out[0]) < 0:
+        return LeaseResult([], 0, None)
+    runs = []
+    for i in range(2, len(out), 3):
+        fields = {
+            "run_id": str(_s(out[i])),
+            "seq": str(out[i + 1]),
+            "state": "leased",
+            "epoch": "1",
+            "worker": worker,
+            "leased_at": _time(now),
+            "lease_expires_at": _time(expires),
+            "point": str(_s(out[i + 2])),
+        }
+        runs.append(RunRecord.from_fields(fields))
+    return LeaseResult(runs, int(out[0]), _meta_from(calibration_id, out[1], queued))
+
+
+def _meta_call(calibration_id: str) -> tuple[list[str], list[Any]]:
+    """KEYS and ARGV of `_META`."""
+    k = CalibrationKeys(calibration_id)
+    return [k.meta, k.proposals, k.requeue, k.refit_lock], list(_META_FIELDS)
+
+
+def _lease_call(
+    calibration_id: str, count: int, worker: str, now: float, lease_seconds: float, max_runs: int
+) -> tuple[list[str], list[Any]]:
+    """KEYS and ARGV of `_LEASE`."""
+    k = CalibrationKeys(calibration_id)
+    keys = [k.meta, k.proposals, k.requeue, k.leases, k.runs, k.refit_lock]
+    args = [k.run_prefix, _time(now), count, worker, _time(now + lease_seconds), max_runs]
+    return keys, [*args, *_META_FIELDS]
+
+
+def _finish_call(
+    calibration_id: str, run_id: str, epoch: int, state: str, result_json: str, now: float
+) -> tuple[list[str], list[Any]]:
+    """KEYS and ARGV of `_FINISH`."""
+    k = CalibrationKeys(calibration_id)
+    keys = [k.meta, k.requeue, k.leases, k.finished, k.run(run_id), k.proposals, k.refit_lock]
+    args = [k.run_prefix, _time(now), run_id, str(epoch), state, result_json, _time(now)]
+    return keys, [*args, *_META_FIELDS]
+
+
 class RedisStore:
     """`Store` on a Redis server (or a cluster, thanks to per-calibration hash tags)."""
 
@@ -345,7 +404,6 @@ class RedisStore:
         self._renew = self._r.register_script(_RENEW)
         self._release = self._r.register_script(_RELEASE)
         self._wait_aof: bool | None = None
-        # The async client serves the event loop that first uses it (the server's).
         self._ar: aioredis.Redis | None = None
 
     @contextmanager
@@ -361,21 +419,23 @@ class RedisStore:
         ) as exc:
             raise StoreUnavailable(f"redis unavailable: {exc}") from exc
 
-    def _with_queue_entry(
-        self, script: Script, keys: list[str], args: list[Any], calibration_id: str
+    def _pipelined(
+        self, script: Script, keys: list[str], args: list[Any], calibration_id: str, durable: bool
     ) -> tuple[Any, bool]:
         """Run ``script`` and look up the calibration in the global refit queue, in one round
         trip; returns the script's answer and whether a refit job is queued.
 
         The script runs as a plain EVALSHA in a non-transactional pipeline (the queue is in
         another slot); a server that lost its scripts (a restart) gets it loaded once more.
+        With ``durable`` on a server that has WAITAOF, the pipeline ends with it: on the same
+        connection as the write, which is whose writes WAITAOF waits for.
         """
+        wait = durable and self._waits_for_aof()
 
         def run() -> tuple[Any, bool]:
             pipe = self._r.pipeline(transaction=False)
-            pipe.evalsha(script.sha, len(keys), *keys, *args)
-            pipe.zscore(REFIT_DUE, calibration_id)
-            out, score = pipe.execute()
+            _queue_script(pipe, script, keys, args, calibration_id, wait)
+            out, score, *_ = pipe.execute()
             return out, score is not None
 
         try:
@@ -383,6 +443,35 @@ class RedisStore:
         except redis.exceptions.NoScriptError:
             self._r.script_load(script.script)
             return run()
+
+    async def _pipelined_async(
+        self, script: Script, keys: list[str], args: list[Any], calibration_id: str, durable: bool
+    ) -> tuple[Any, bool]:
+        """`_pipelined` on the event loop, through the async client."""
+        if durable and self._wait_aof is None:
+            await to_thread.run_sync(self.startup_warnings)
+        wait = durable and bool(self._wait_aof)
+        client = self._async_client()
+
+        async def run() -> tuple[Any, bool]:
+            pipe = client.pipeline(transaction=False)
+            _queue_script(pipe, script, keys, args, calibration_id, wait)
+            out, score, *_ = await pipe.execute()
+            return out, score is not None
+
+        try:
+            return await run()
+        except redis.exceptions.NoScriptError:
+            await client.script_load(script.script)
+            return await run()
+
+    def _async_client(self) -> aioredis.Redis:
+        # Serves the event loop that first uses it (the server's).
+        if self._ar is None:
+            self._ar = aioredis.Redis.from_url(
+                self._url, socket_timeout=5.0, socket_connect_timeout=2.0
+            )
+        return self._ar
 
     def ping(self) -> None:
         with self._guard():
@@ -432,12 +521,17 @@ class RedisStore:
             )
         return warnings
 
-    def _durable(self) -> None:
-        # With AOF on Redis >= 7.2, wait until this connection's writes are fsynced locally.
+    def _waits_for_aof(self) -> bool:
+        # With AOF on Redis >= 7.2, a write is acknowledged once WAITAOF says it is fsynced.
         # (Older servers have no WAITAOF: there 'appendfsync always' fsyncs before replying.)
         if self._wait_aof is None:
             self.startup_warnings()
-        if self._wait_aof:
+        return bool(self._wait_aof)
+
+    def _durable(self) -> None:
+        # After a write outside `_pipelined`: the pool hands a thread back the connection it
+        # just released, so WAITAOF waits for that write.
+        if self._waits_for_aof():
             self._r.execute_command("WAITAOF", 1, 0, 0)
 
     # calibrations
@@ -469,39 +563,18 @@ class RedisStore:
             self._durable()
 
     def get_meta(self, calibration_id: str) -> CalibrationMeta | None:
-        k = CalibrationKeys(calibration_id)
+        keys, args = _meta_call(calibration_id)
         with self._guard():
-            snapshot, queued = self._with_queue_entry(
-                self._meta, [k.meta, k.proposals, k.requeue, k.refit_lock], _META_FIELDS, k.id
-            )
-        if not snapshot:
-            return None
-        return _meta_from(calibration_id, snapshot, queued)
+            snapshot, queued = self._pipelined(self._meta, keys, args, calibration_id, False)
+        return _meta_from(calibration_id, snapshot, queued) if snapshot else None
 
     async def get_meta_async(self, calibration_id: str) -> CalibrationMeta | None:
-        k = CalibrationKeys(calibration_id)
-        if self._ar is None:
-            self._ar = aioredis.Redis.from_url(
-                self._url, socket_timeout=5.0, socket_connect_timeout=2.0
-            )
-        keys = [k.meta, k.proposals, k.requeue, k.refit_lock]
-
-        async def run() -> tuple[Any, Any]:
-            assert self._ar is not None
-            pipe = self._ar.pipeline(transaction=False)
-            pipe.evalsha(self._meta.sha, len(keys), *keys, *_META_FIELDS)
-            pipe.zscore(REFIT_DUE, calibration_id)
-            return tuple(await pipe.execute())  # type: ignore[return-value]
-
+        keys, args = _meta_call(calibration_id)
         with self._guard():
-            try:
-                snapshot, score = await run()
-            except redis.exceptions.NoScriptError:
-                await self._ar.script_load(self._meta.script)
-                snapshot, score = await run()
-        if not snapshot:
-            return None
-        return _meta_from(calibration_id, snapshot, score is not None)
+            snapshot, queued = await self._pipelined_async(
+                self._meta, keys, args, calibration_id, False
+            )
+        return _meta_from(calibration_id, snapshot, queued) if snapshot else None
 
     def get_spec(self, calibration_id: str) -> str | None:
         with self._guard():
@@ -554,28 +627,26 @@ class RedisStore:
         lease_seconds: float,
         max_runs: int,
     ) -> LeaseResult:
-        k = CalibrationKeys(calibration_id)
-        expires = now + lease_seconds
-        keys = [k.meta, k.proposals, k.requeue, k.leases, k.runs, k.refit_lock]
-        args = [k.run_prefix, _time(now), count, worker, _time(expires), max_runs]
+        keys, args = _lease_call(calibration_id, count, worker, now, lease_seconds, max_runs)
         with self._guard():
-            out, queued = self._with_queue_entry(self._lease, keys, [*args, *_META_FIELDS], k.id)
-        if int(out[0]) < 0:
-            return LeaseResult([], 0, None)
-        runs = []
-        for i in range(2, len(out), 3):
-            fields = {
-                "run_id": str(_s(out[i])),
-                "seq": str(out[i + 1]),
-                "state": "leased",
-                "epoch": "1",
-                "worker": worker,
-                "leased_at": _time(now),
-                "lease_expires_at": _time(expires),
-                "point": str(_s(out[i + 2])),
-            }
-            runs.append(RunRecord.from_fields(fields))
-        return LeaseResult(runs, int(out[0]), _meta_from(calibration_id, out[1], queued))
+            out, queued = self._pipelined(self._lease, keys, args, calibration_id, False)
+        return _lease_result(calibration_id, out, queued, worker, now, now + lease_seconds)
+
+    async def lease_async(
+        self,
+        calibration_id: str,
+        count: int,
+        worker: str,
+        now: float,
+        lease_seconds: float,
+        max_runs: int,
+    ) -> LeaseResult:
+        keys, args = _lease_call(calibration_id, count, worker, now, lease_seconds, max_runs)
+        with self._guard():
+            out, queued = await self._pipelined_async(
+                self._lease, keys, args, calibration_id, False
+            )
+        return _lease_result(calibration_id, out, queued, worker, now, now + lease_seconds)
 
     def expire(self, calibration_id: str, now: float) -> int:
         k = CalibrationKeys(calibration_id)
@@ -604,15 +675,26 @@ class RedisStore:
         result_json: str,
         now: float,
     ) -> CalibrationMeta | None:
-        k = CalibrationKeys(calibration_id)
-        keys = [k.meta, k.requeue, k.leases, k.finished, k.run(run_id), k.proposals, k.refit_lock]
-        args = [k.run_prefix, _time(now), run_id, str(epoch), state, result_json, _time(now)]
+        keys, args = _finish_call(calibration_id, run_id, epoch, state, result_json, now)
         with self._guard():
-            out, queued = self._with_queue_entry(self._finish, keys, [*args, *_META_FIELDS], k.id)
-            if isinstance(out, int):
-                return None
-            self._durable()
-        return _meta_from(calibration_id, out[1], queued)
+            out, queued = self._pipelined(self._finish, keys, args, calibration_id, True)
+        return None if isinstance(out, int) else _meta_from(calibration_id, out[1], queued)
+
+    async def finish_run_async(
+        self,
+        calibration_id: str,
+        run_id: str,
+        epoch: int,
+        state: str,
+        result_json: str,
+        now: float,
+    ) -> CalibrationMeta | None:
+        keys, args = _finish_call(calibration_id, run_id, epoch, state, result_json, now)
+        with self._guard():
+            out, queued = await self._pipelined_async(
+                self._finish, keys, args, calibration_id, True
+            )
+        return None if isinstance(out, int) else _meta_from(calibration_id, out[1], queued)
 
     def import_runs(
         self, calibration_id: str, items: list[tuple[str, str]], now: float

@@ -383,6 +383,19 @@ class SqliteStore:
             )
             return LeaseResult(runs, expired, self._meta(db, calibration_id))
 
+    async def lease_async(
+        self,
+        calibration_id: str,
+        count: int,
+        worker: str,
+        now: float,
+        lease_seconds: float,
+        max_runs: int,
+    ) -> LeaseResult:
+        return await to_thread.run_sync(
+            self.lease, calibration_id, count, worker, now, lease_seconds, max_runs
+        )
+
     def expire(self, calibration_id: str, now: float) -> int:
         with self._write() as db:
             return self._expire_overdue(db, calibration_id, now)
@@ -434,6 +447,19 @@ class SqliteStore:
                 (was_leased, calibration_id),
             )
             return self._meta(db, calibration_id)
+
+    async def finish_run_async(
+        self,
+        calibration_id: str,
+        run_id: str,
+        epoch: int,
+        state: str,
+        result_json: str,
+        now: float,
+    ) -> CalibrationMeta | None:
+        return await to_thread.run_sync(
+            self.finish_run, calibration_id, run_id, epoch, state, result_json, now
+        )
 
     def import_runs(
         self, calibration_id: str, items: list[tuple[str, str]], now: float

@@ -5,6 +5,7 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 import pytest
+from anyio.from_thread import BlockingPortal, start_blocking_portal
 from helpers_api import AppClient, Calibration, FakeClock, create, make_client
 
 from honing.api.refitter import Refitter
@@ -24,6 +25,15 @@ def store(store_url: str) -> Iterator[Store]:
     opened = open_store(store_url)
     yield opened
     opened.close()
+
+
+@pytest.fixture
+def portal(store: Store) -> Iterator[BlockingPortal]:
+    """An event loop in a thread, as the server has: the service's lease and report are
+    coroutines, called from any thread through it."""
+    with start_blocking_portal() as p:
+        yield p
+        p.call(store.aclose)
 
 
 @pytest.fixture

@@ -3,6 +3,7 @@ import threading
 import time
 from collections import Counter
 
+from anyio.from_thread import BlockingPortal
 from helpers_api import SPEC, simulate
 
 from honing.api.service import CalibrationService
@@ -21,7 +22,7 @@ def _spec() -> dict:
     }
 
 
-def test_48_threads_lease_and_report_2000_results(store: Store) -> None:
+def test_48_threads_lease_and_report_2000_results(store: Store, portal: BlockingPortal) -> None:
     service = CalibrationService(store)
     calibration_id, _, _ = service.create(_spec())
     handed: list[tuple[str, tuple[float, ...]]] = []
@@ -35,7 +36,9 @@ def test_48_threads_lease_and_report_2000_results(store: Store) -> None:
         try:
             start.wait()
             while True:
-                outcome = service.lease(calibration_id, rng.randint(1, 6), f"w{seed}", 3600.0)
+                outcome = portal.call(
+                    service.lease, calibration_id, rng.randint(1, 6), f"w{seed}", 3600.0
+                )
                 if not outcome.runs:
                     return
                 with lock:
@@ -43,8 +46,12 @@ def test_48_threads_lease_and_report_2000_results(store: Store) -> None:
                         (r["run_id"], tuple(r["parameters"].values())) for r in outcome.runs
                     )
                 for run in outcome.runs:
-                    done = service.report(
-                        calibration_id, run["run_id"], simulate(run["parameters"]), None
+                    done = portal.call(
+                        service.report,
+                        calibration_id,
+                        run["run_id"],
+                        simulate(run["parameters"]),
+                        None,
                     )
                     assert done.state == "done"
                     with lock:
@@ -78,10 +85,10 @@ def test_48_threads_lease_and_report_2000_results(store: Store) -> None:
         assert record.result["outputs"] == simulate(record.point["parameters"])  # type: ignore[index]
 
 
-def test_concurrent_reports_of_one_run_agree(store: Store) -> None:
+def test_concurrent_reports_of_one_run_agree(store: Store, portal: BlockingPortal) -> None:
     service = CalibrationService(store)
     calibration_id, _, _ = service.create(SPEC)
-    (run,) = service.lease(calibration_id, 1, "w", 3600.0).runs
+    (run,) = portal.call(service.lease, calibration_id, 1, "w", 3600.0).runs
     outputs = simulate(run["parameters"])
     different = {k: [v + 1.0 for v in vs] for k, vs in outputs.items()}
     outcomes: list[str] = []
@@ -89,7 +96,9 @@ def test_concurrent_reports_of_one_run_agree(store: Store) -> None:
 
     def send(i: int) -> None:
         try:
-            service.report(calibration_id, run["run_id"], outputs if i % 2 else different, None)
+            portal.call(
+                service.report, calibration_id, run["run_id"], outputs if i % 2 else different, None
+            )
             result = "same" if i % 2 else "different"
         except Exception as exc:
             result = type(exc).__name__
@@ -107,7 +116,7 @@ def test_concurrent_reports_of_one_run_agree(store: Store) -> None:
     assert service.meta(calibration_id).done == 1
 
 
-def test_expiring_leases_under_load_never_overlap(store: Store) -> None:
+def test_expiring_leases_under_load_never_overlap(store: Store, portal: BlockingPortal) -> None:
     target = 400
     service = CalibrationService(store)
     design = {"initial_runs": target, "batch_size": 4}
@@ -123,13 +132,21 @@ def test_expiring_leases_under_load_never_overlap(store: Store) -> None:
                 meta = service.meta(calibration_id)
                 if meta.queued == 0 and meta.leased == 0:
                     return  # every point handed out, and no lease outstanding
-                runs = service.lease(calibration_id, rng.randint(1, 3), f"w{seed}", 0.5).runs
+                runs = portal.call(
+                    service.lease, calibration_id, rng.randint(1, 3), f"w{seed}", 0.5
+                ).runs
                 if not runs:
                     time.sleep(0.02)
                 for run in runs:
                     if rng.random() < 0.15:
                         continue  # this worker "dies" with the lease: it must expire
-                    service.report(calibration_id, run["run_id"], simulate(run["parameters"]), None)
+                    portal.call(
+                        service.report,
+                        calibration_id,
+                        run["run_id"],
+                        simulate(run["parameters"]),
+                        None,
+                    )
         except BaseException as exc:  # reported below
             errors.append(exc)
 

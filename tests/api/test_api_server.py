@@ -11,6 +11,7 @@ from pathlib import Path
 
 import httpx
 import pytest
+from anyio.from_thread import start_blocking_portal
 from helpers_api import SPEC, simulate
 
 from honing.api import server
@@ -200,8 +201,15 @@ def test_a_refit_worker_killed_mid_fit_is_retried(store_url: str, tmp_path: Path
     store = open_store(store_url)
     service = CalibrationService(store)
     calibration_id, _, _ = service.create(SPEC)
-    for run in service.lease(calibration_id, SPEC["design"]["initial_runs"], "w", 3600.0).runs:
-        service.report(calibration_id, run["run_id"], simulate(run["parameters"]), None)
+    with start_blocking_portal() as portal:
+        leased = portal.call(
+            service.lease, calibration_id, SPEC["design"]["initial_runs"], "w", 3600.0
+        )
+        for run in leased.runs:
+            portal.call(
+                service.report, calibration_id, run["run_id"], simulate(run["parameters"]), None
+            )
+        portal.call(store.aclose)
     assert store.refit_queue_depth() == 1
     marker = tmp_path / "fitting"
     proc = subprocess.Popen(

@@ -1,9 +1,11 @@
 import asyncio
 import json
+from types import SimpleNamespace
 
 import pytest
 
-from honing.api.store import NewCalibration, Store
+from honing.api.store import CalibrationMeta, LeaseResult, NewCalibration, Store
+from honing.api.store.redis_store import _queue_script
 
 
 def point(i: int) -> str:
@@ -54,6 +56,36 @@ def test_async_metadata_read_agrees_with_the_sync_one(store: Store) -> None:
 
     meta, missing = asyncio.run(read())
     assert meta == store.get_meta("c1") and missing is None
+
+
+def test_async_lease_and_finish_follow_the_same_rules(store: Store) -> None:
+    make(store, "c1")
+    make(store, "c2")
+
+    async def steps() -> tuple[LeaseResult, CalibrationMeta | None, CalibrationMeta | None]:
+        try:
+            leased = await store.lease_async("c1", 2, "w", 10.0, 60.0, 100)
+            run = leased.runs[0]
+            stale = await store.finish_run_async(
+                "c1", run.run_id, run.epoch + 1, "done", done(1.0), 11.0
+            )
+            after = await store.finish_run_async(
+                "c1", run.run_id, run.epoch, "done", done(1.0), 11.0
+            )
+            return leased, stale, after
+        finally:
+            await store.aclose()
+
+    leased, stale, after = asyncio.run(steps())
+    twin = store.lease("c2", 2, "w", 10.0, 60.0, 100)
+    fields = [(r.run_id, r.epoch, r.point, r.lease_expires_at) for r in leased.runs]
+    assert fields == [(r.run_id, r.epoch, r.point, r.lease_expires_at) for r in twin.runs]
+    assert leased.meta is not None and twin.meta is not None
+    assert (leased.meta.leased, leased.meta.queued) == (twin.meta.leased, twin.meta.queued)
+    assert stale is None  # fenced: a superseded epoch writes nothing
+    assert after is not None and (after.done, after.leased) == (1, 1)
+    record = store.get_run("c1", leased.runs[0].run_id)
+    assert record is not None and record.state == "done"
 
 
 def test_lease_hands_out_in_order_with_fresh_ids(store: Store) -> None:
@@ -249,3 +281,25 @@ def test_lease_returns_the_metadata_and_stops_once_closed(store: Store) -> None:
     make(store, "c2")
     assert store.record_refit_failure("c2", "boom", 1, 5.0)
     assert store.lease("c2", 5, "w", 1.0, 60.0, 100).runs == []
+
+
+@pytest.mark.parametrize("wait", [True, False])
+def test_waitaof_travels_in_the_write_pipeline(wait: bool) -> None:
+    # WAITAOF blocks until the writes of the connection that sends it are fsynced (Redis
+    # command reference, WAITAOF): sent on another pooled connection it would wait for
+    # nothing. The Redis here (7.0) has no WAITAOF, so the order is checked on a recorder.
+    sent: list[str] = []
+
+    class Recorder:
+        def evalsha(self, sha: str, *args: object) -> None:
+            sent.append(f"EVALSHA {sha}")
+
+        def zscore(self, key: str, member: str) -> None:
+            sent.append(f"ZSCORE {member}")
+
+        def execute_command(self, *args: object) -> None:
+            sent.append(" ".join(map(str, args)))
+
+    script = SimpleNamespace(sha="abc")
+    _queue_script(Recorder(), script, ["k"], ["a"], "c1", wait)  # type: ignore[arg-type]
+    assert sent == ["EVALSHA abc", "ZSCORE c1"] + (["WAITAOF 1 0 0"] if wait else [])

@@ -116,6 +116,7 @@ class SqliteStore:
         self._local = threading.local()
         self._all: list[sqlite3.Connection] = []
         self._lock = threading.Lock()
+        self._writer = threading.Lock()
         self._conn().executescript(_SCHEMA)
 
     def _conn(self) -> sqlite3.Connection:
@@ -138,21 +139,26 @@ class SqliteStore:
 
     @contextmanager
     def _write(self) -> Iterator[sqlite3.Connection]:
+        # Writers of this process queue on a lock rather than on SQLite's busy handler, which
+        # polls with sleeps of up to 100 ms: under many concurrent requests those sleeps,
+        # not the commits, would set the pace. Other processes (refit workers) still meet
+        # the busy timeout.
         db = self._conn()
-        try:
-            db.execute("BEGIN IMMEDIATE")
-        except sqlite3.OperationalError as exc:
-            raise StoreUnavailable(f"sqlite busy: {exc}") from exc
-        try:
-            yield db
-        except BaseException:
-            db.execute("ROLLBACK")
-            raise
-        try:
-            db.execute("COMMIT")
-        except sqlite3.OperationalError as exc:
-            db.execute("ROLLBACK")
-            raise StoreUnavailable(f"sqlite commit failed: {exc}") from exc
+        with self._writer:
+            try:
+                db.execute("BEGIN IMMEDIATE")
+            except sqlite3.OperationalError as exc:
+                raise StoreUnavailable(f"sqlite busy: {exc}") from exc
+            try:
+                yield db
+            except BaseException:
+                db.execute("ROLLBACK")
+                raise
+            try:
+                db.execute("COMMIT")
+            except sqlite3.OperationalError as exc:
+                db.execute("ROLLBACK")
+                raise StoreUnavailable(f"sqlite commit failed: {exc}") from exc
 
     @contextmanager
     def _read(self) -> Iterator[sqlite3.Connection]:

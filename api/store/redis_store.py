@@ -528,18 +528,21 @@ class RedisStore:
             self.startup_warnings()
         return bool(self._wait_aof)
 
-    def _durable(self) -> None:
-        # After a write outside `_pipelined`: the pool hands a thread back the connection it
-        # just released, so WAITAOF waits for that write.
-        if self._waits_for_aof():
-            self._r.execute_command("WAITAOF", 1, 0, 0)
+    @contextmanager
+    def _durable(self) -> Iterator[redis.Redis]:
+        """A client held on one pooled connection for a write, then WAITAOF on that same
+        connection (it waits for its own connection's writes only) when the write succeeded."""
+        with self._r.client() as one:
+            yield one
+            if self._waits_for_aof():
+                one.execute_command("WAITAOF", 1, 0, 0)
 
     # calibrations
 
     def create(self, calibration: NewCalibration) -> None:
         k = CalibrationKeys(calibration.id)
-        with self._guard():
-            pipe = self._r.pipeline(transaction=True)
+        with self._guard(), self._durable() as one:
+            pipe = one.pipeline(transaction=True)
             pipe.hset(
                 k.meta,
                 mapping={
@@ -560,7 +563,6 @@ class RedisStore:
             for i in range(0, len(calibration.proposals), _CHUNK):
                 pipe.rpush(k.proposals, *calibration.proposals[i : i + _CHUNK])
             pipe.execute()
-            self._durable()
 
     def get_meta(self, calibration_id: str) -> CalibrationMeta | None:
         keys, args = _meta_call(calibration_id)
@@ -608,12 +610,12 @@ class RedisStore:
         proposals: list[str],
     ) -> bool:
         k = CalibrationKeys(calibration_id)
-        with self._guard():
+        with self._guard(), self._durable() as one:
             done = self._swap(
                 keys=[k.meta, k.state, k.proposals],
                 args=[str(expected_version), blob, str(round_), engine_status, *proposals],
+                client=one,
             )
-            self._durable()
         return int(done) == 1
 
     # runs
@@ -701,11 +703,12 @@ class RedisStore:
     ) -> list[str]:
         k = CalibrationKeys(calibration_id)
         flat = [part for item in items for part in item]
-        with self._guard():
+        with self._guard(), self._durable() as one:
             out = self._import(
-                keys=[k.meta, k.runs, k.finished], args=[k.run_prefix, _time(now), *flat]
+                keys=[k.meta, k.runs, k.finished],
+                args=[k.run_prefix, _time(now), *flat],
+                client=one,
             )
-            self._durable()
         if out and out[0] == -1:
             return []
         return [str(_s(rid)) for rid in out]

@@ -18,7 +18,7 @@ from collections import OrderedDict
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
-from typing import Any
+from typing import Any, TypeVar
 
 import numpy as np
 import orjson
@@ -55,6 +55,10 @@ _CALIBRATION_ID = re.compile(r"[A-Za-z0-9_-]{1,64}")
 _RUN_ID = re.compile(r"r[0-9]{1,15}")
 #: A report re-reads a run that changed under it (expired or finished meanwhile) this often.
 _REPORT_ATTEMPTS = 5
+#: Output values above which a report's checks run in a worker thread, off the event loop.
+LOOP_OUTPUT_VALUES = 2000
+
+T = TypeVar("T")
 
 
 def rfc3339(timestamp: float | None) -> str | None:
@@ -127,12 +131,45 @@ def run_table(spec: CalibrationSpec, records: Sequence[RunRecord]) -> RunTable:
 
 
 def _due(spec: CalibrationSpec, state: EngineState, meta: CalibrationMeta) -> bool:
-    """Whether the finished runs in ``meta`` call for a refit of ``state``."""
-    return refit_due(spec, state, meta.done + meta.failed, meta.leased, meta.queued)
+    """Whether the finished runs in ``meta`` call for a refit of ``state`` (never once the
+    calibration has failed). ``meta`` must be fresh: read after the write that may complete
+    a batch."""
+    done = meta.done + meta.failed
+    return not meta.failed_error and refit_due(spec, state, done, meta.leased, meta.queued)
+
+
+def _checked_outputs(
+    spec: CalibrationSpec, outputs: Mapping[str, Any] | None
+) -> tuple[np.ndarray | None, dict[str, list[float]] | None]:
+    """A report's outputs validated and flattened, and split back per channel as stored
+    (None for a failed run)."""
+    if outputs is None:
+        return None, None
+    flat = spec.flatten_outputs(outputs)
+    return flat, spec.split_outputs(flat)
+
+
+def _result_json(
+    spec: CalibrationSpec,
+    record: RunRecord,
+    flat: np.ndarray | None,
+    normalised: dict[str, list[float]] | None,
+    error: str | None,
+) -> tuple[float | None, str]:
+    """The trust of a result against the prediction made when its run was leased, and the
+    result as stored."""
+    trust = None
+    if flat is not None:
+        predicted = _decode_prediction(record.point.get("prediction"))
+        trust = float(trust_index(spec, predicted, flat))
+    return trust, _dumps({"outputs": normalised, "error": error, "trust": trust})
 
 
 def _settled(
-    record: RunRecord, new_state: str, normalised: Any, error: str | None
+    record: RunRecord,
+    new_state: str,
+    normalised: dict[str, list[float]] | None,
+    error: str | None,
 ) -> ReportOutcome:
     """A report for a run that already has its result: the same result again is a no-op,
     a different one a conflict."""
@@ -188,6 +225,7 @@ class CalibrationService:
     # caches
 
     def _cached_spec(self, calibration_id: str) -> CalibrationSpec | None:
+        """The spec if it is cached (safe on the event loop: no I/O)."""
         with self._lock:
             spec = self._specs.get(calibration_id)
             if spec is not None:
@@ -215,6 +253,7 @@ class CalibrationService:
         return spec if spec is not None else await to_thread.run_sync(self.spec, calibration_id)
 
     def _cached_state(self, meta: CalibrationMeta) -> EngineState | None:
+        """The state of ``meta``'s version if it is cached (safe on the event loop)."""
         with self._lock:
             cached = self._states.get(meta.id)
             if cached is not None and cached[0] == meta.state_version:
@@ -387,12 +426,13 @@ class CalibrationService:
     ) -> ReportOutcome:
         """Record one result: validated, trust computed, fenced by the run's epoch.
 
-        Runs on the event loop: the store step is awaited, and the rest (checking the
-        outputs, the trust index) takes well under a millisecond for hundreds of values.
+        Runs on the event loop, the store step awaited. Checking the outputs and the trust
+        index take about 0.06 ms for 300 values and 1.5 ms for 15,000: above
+        `LOOP_OUTPUT_VALUES` they go to a worker thread, so one long result does not hold up
+        every other request.
         """
         spec = await self._spec_async(calibration_id)
-        flat = spec.flatten_outputs(outputs) if outputs is not None else None
-        normalised = spec.split_outputs(flat) if flat is not None else None
+        flat, normalised = await self._compute(spec, _checked_outputs, spec, outputs)
         new_state = "failed" if flat is None else "done"
         known = _RUN_ID.fullmatch(run_id) is not None
         record = self._leased_record(calibration_id, run_id) if known else None
@@ -402,14 +442,18 @@ class CalibrationService:
             if record is None:
                 raise NotFound(f"run {run_id!r} does not exist in calibration {calibration_id!r}")
             if record.state in ("done", "failed"):
-                return _settled(record, new_state, normalised, error)
-            trust = None
-            if flat is not None:
-                predicted = _decode_prediction(record.point.get("prediction"))
-                trust = float(trust_index(spec, predicted, flat))
-            result = {"outputs": normalised, "error": error, "trust": trust}
+                outcome = _settled(record, new_state, normalised, error)
+                # A repeat may follow an answer lost after the write, before the refit was
+                # queued: check again, so the retry queues it.
+                meta = await self.store.get_meta_async(calibration_id)
+                if meta is not None:
+                    await self._schedule_async(spec, meta)
+                return outcome
+            trust, result = await self._compute(
+                spec, _result_json, spec, record, flat, normalised, error
+            )
             after = await self.store.finish_run_async(
-                calibration_id, run_id, record.epoch, new_state, _dumps(result), self.clock()
+                calibration_id, run_id, record.epoch, new_state, result, self.clock()
             )
             if after is not None:
                 self._count(new_state)
@@ -417,6 +461,13 @@ class CalibrationService:
                 return ReportOutcome(run_id, new_state, trust)
             record = None  # it changed under us: read it again
         raise ConflictError(f"run {run_id!r} kept changing while its result was written")
+
+    @staticmethod
+    async def _compute(spec: CalibrationSpec, fn: Callable[..., T], *args: Any) -> T:
+        """``fn(*args)`` on the event loop for short outputs, in a worker thread for long."""
+        if spec.output_size > LOOP_OUTPUT_VALUES:
+            return await to_thread.run_sync(fn, *args)
+        return fn(*args)
 
     def import_runs(self, calibration_id: str, runs: Sequence[Mapping[str, Any]]) -> int:
         """Add runs evaluated elsewhere, all or nothing, as done with trust 1."""
@@ -454,18 +505,17 @@ class CalibrationService:
         return meta is not None and self._schedule(meta)
 
     def _schedule(self, meta: CalibrationMeta) -> bool:
-        # ``meta`` must be fresh: read after the write that may complete a batch.
-        if meta.failed_error or not _due(self.spec(meta.id), self.state(meta), meta):
+        if not _due(self.spec(meta.id), self.state(meta), meta):
             return False
         self.store.enqueue_refit(meta.id, self.clock())
         return True
 
     async def _schedule_async(self, spec: CalibrationSpec, meta: CalibrationMeta) -> None:
-        """`_schedule` from the event loop: store reads and the queue write in a thread, and
-        only when needed (the state is cached, and most results complete no batch)."""
-        if meta.failed_error:
-            return
-        state = self._cached_state(meta) or await to_thread.run_sync(self.state, meta)
+        """`_schedule` from the event loop: the state from the cache (a worker thread reads
+        it otherwise), and the queue write in a thread when a batch is complete."""
+        state = self._cached_state(meta)
+        if state is None:
+            state = await to_thread.run_sync(self.state, meta)
         if _due(spec, state, meta):
             await to_thread.run_sync(self.store.enqueue_refit, meta.id, self.clock())
 

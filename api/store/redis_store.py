@@ -8,6 +8,7 @@ as strings, since Lua would print them with 14 significant digits.
 
 from __future__ import annotations
 
+import asyncio
 import logging
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -16,6 +17,7 @@ from typing import Any
 import redis
 import redis.asyncio as aioredis
 from anyio import to_thread
+from redis.client import Pipeline
 from redis.commands.core import Script
 
 from honing.api.store.base import (
@@ -32,6 +34,11 @@ __all__ = ["RedisStore"]
 log = logging.getLogger(__name__)
 
 _CHUNK = 1000
+#: Seconds a command may take, and a connection to open, before Redis counts as unavailable.
+SOCKET_TIMEOUT = 5.0
+CONNECT_TIMEOUT = 2.0
+#: Connections of the async client (lease, report, auth reads): requests beyond them wait.
+ASYNC_CONNECTIONS = 64
 
 # Script flags (Redis 7+): a script that writes is refused as a whole, before it starts, while
 # Redis is over maxmemory (so a full Redis answers 503, never half a step); one that only reads
@@ -325,13 +332,24 @@ def _time(value: float) -> str:
 
 
 def _queue_script(
-    pipe: Any, script: Script, keys: list[str], args: list[Any], calibration_id: str, wait: bool
+    pipe: Pipeline | aioredis.client.Pipeline,
+    script: Script,
+    keys: list[str],
+    args: list[Any],
+    queue_of: str | None,
+    wait: bool,
 ) -> None:
-    """Queue on ``pipe`` (sync or async): the script, the refit queue entry, and WAITAOF."""
+    """Queue on ``pipe``: the script, the refit queue entry of ``queue_of``, then WAITAOF."""
     pipe.evalsha(script.sha, len(keys), *keys, *args)
-    pipe.zscore(REFIT_DUE, calibration_id)
+    if queue_of is not None:
+        pipe.zscore(REFIT_DUE, queue_of)
     if wait:
         pipe.execute_command("WAITAOF", 1, 0, 0)
+
+
+def _script_answer(replies: list[Any], queue_of: str | None) -> tuple[Any, bool]:
+    """The script's answer and whether a refit job is queued, from `_queue_script`'s replies."""
+    return replies[0], queue_of is not None and replies[1] is not None
 
 
 def _lease_result(
@@ -390,7 +408,10 @@ class RedisStore:
     def __init__(self, url: str) -> None:
         self._url = url
         self._r = redis.Redis.from_url(
-            url, socket_timeout=5.0, socket_connect_timeout=2.0, decode_responses=False
+            url,
+            socket_timeout=SOCKET_TIMEOUT,
+            socket_connect_timeout=CONNECT_TIMEOUT,
+            decode_responses=False,
         )
         self._meta = self._r.register_script(_META)
         self._expire = self._r.register_script(_EXPIRE)
@@ -405,6 +426,7 @@ class RedisStore:
         self._release = self._r.register_script(_RELEASE)
         self._wait_aof: bool | None = None
         self._ar: aioredis.Redis | None = None
+        self._ar_loop: asyncio.AbstractEventLoop | None = None
 
     @contextmanager
     def _guard(self) -> Iterator[None]:
@@ -420,10 +442,16 @@ class RedisStore:
             raise StoreUnavailable(f"redis unavailable: {exc}") from exc
 
     def _pipelined(
-        self, script: Script, keys: list[str], args: list[Any], calibration_id: str, durable: bool
+        self,
+        script: Script,
+        keys: list[str],
+        args: list[Any],
+        *,
+        queue_of: str | None = None,
+        durable: bool = False,
     ) -> tuple[Any, bool]:
-        """Run ``script`` and look up the calibration in the global refit queue, in one round
-        trip; returns the script's answer and whether a refit job is queued.
+        """Run ``script`` in one round trip; returns its answer and whether ``queue_of`` has a
+        refit job queued (False without ``queue_of``).
 
         The script runs as a plain EVALSHA in a non-transactional pipeline (the queue is in
         another slot); a server that lost its scripts (a restart) gets it loaded once more.
@@ -434,9 +462,8 @@ class RedisStore:
 
         def run() -> tuple[Any, bool]:
             pipe = self._r.pipeline(transaction=False)
-            _queue_script(pipe, script, keys, args, calibration_id, wait)
-            out, score, *_ = pipe.execute()
-            return out, score is not None
+            _queue_script(pipe, script, keys, args, queue_of, wait)
+            return _script_answer(pipe.execute(), queue_of)
 
         try:
             return run()
@@ -445,7 +472,13 @@ class RedisStore:
             return run()
 
     async def _pipelined_async(
-        self, script: Script, keys: list[str], args: list[Any], calibration_id: str, durable: bool
+        self,
+        script: Script,
+        keys: list[str],
+        args: list[Any],
+        *,
+        queue_of: str | None = None,
+        durable: bool = False,
     ) -> tuple[Any, bool]:
         """`_pipelined` on the event loop, through the async client."""
         if durable and self._wait_aof is None:
@@ -455,9 +488,8 @@ class RedisStore:
 
         async def run() -> tuple[Any, bool]:
             pipe = client.pipeline(transaction=False)
-            _queue_script(pipe, script, keys, args, calibration_id, wait)
-            out, score, *_ = await pipe.execute()
-            return out, score is not None
+            _queue_script(pipe, script, keys, args, queue_of, wait)
+            return _script_answer(await pipe.execute(), queue_of)
 
         try:
             return await run()
@@ -466,11 +498,19 @@ class RedisStore:
             return await run()
 
     def _async_client(self) -> aioredis.Redis:
-        # Serves the event loop that first uses it (the server's).
-        if self._ar is None:
-            self._ar = aioredis.Redis.from_url(
-                self._url, socket_timeout=5.0, socket_connect_timeout=2.0
+        """The async client of the running event loop (the server's; a new one for another
+        loop, whose connections could not serve this one). Requests beyond its
+        `ASYNC_CONNECTIONS` connections wait for one, up to the socket timeout."""
+        loop = asyncio.get_running_loop()
+        if self._ar is None or self._ar_loop is not loop:
+            pool = aioredis.BlockingConnectionPool.from_url(
+                self._url,
+                max_connections=ASYNC_CONNECTIONS,
+                timeout=SOCKET_TIMEOUT,
+                socket_timeout=SOCKET_TIMEOUT,
+                socket_connect_timeout=CONNECT_TIMEOUT,
             )
+            self._ar, self._ar_loop = aioredis.Redis.from_pool(pool), loop
         return self._ar
 
     def ping(self) -> None:
@@ -481,9 +521,9 @@ class RedisStore:
         self._r.close()
 
     async def aclose(self) -> None:
-        if self._ar is not None:
+        if self._ar is not None and self._ar_loop is asyncio.get_running_loop():
             await self._ar.aclose()
-            self._ar = None
+        self._ar = self._ar_loop = None
 
     def startup_warnings(self) -> list[str]:
         """Check AOF, fsync and eviction settings; also decide whether WAITAOF is usable."""
@@ -522,27 +562,22 @@ class RedisStore:
         return warnings
 
     def _waits_for_aof(self) -> bool:
-        # With AOF on Redis >= 7.2, a write is acknowledged once WAITAOF says it is fsynced.
+        # With AOF on Redis >= 7.2, a write is acknowledged once WAITAOF says it is fsynced
+        # (leases too: a lease lost in a crash would hand its run id out again).
         # (Older servers have no WAITAOF: there 'appendfsync always' fsyncs before replying.)
         if self._wait_aof is None:
             self.startup_warnings()
         return bool(self._wait_aof)
 
-    @contextmanager
-    def _durable(self) -> Iterator[redis.Redis]:
-        """A client held on one pooled connection for a write, then WAITAOF on that same
-        connection (it waits for its own connection's writes only) when the write succeeded."""
-        with self._r.client() as one:
-            yield one
-            if self._waits_for_aof():
-                one.execute_command("WAITAOF", 1, 0, 0)
-
     # calibrations
 
     def create(self, calibration: NewCalibration) -> None:
         k = CalibrationKeys(calibration.id)
-        with self._guard(), self._durable() as one:
-            pipe = one.pipeline(transaction=True)
+        with self._guard():
+            # MULTI ... EXEC spelled out in a plain pipeline, so that WAITAOF can follow the
+            # transaction on its connection (a transactional pipeline ends at EXEC).
+            pipe = self._r.pipeline(transaction=False)
+            pipe.execute_command("MULTI")
             pipe.hset(
                 k.meta,
                 mapping={
@@ -562,19 +597,22 @@ class RedisStore:
             pipe.set(k.state, calibration.state_blob)
             for i in range(0, len(calibration.proposals), _CHUNK):
                 pipe.rpush(k.proposals, *calibration.proposals[i : i + _CHUNK])
+            pipe.execute_command("EXEC")
+            if self._waits_for_aof():
+                pipe.execute_command("WAITAOF", 1, 0, 0)
             pipe.execute()
 
     def get_meta(self, calibration_id: str) -> CalibrationMeta | None:
         keys, args = _meta_call(calibration_id)
         with self._guard():
-            snapshot, queued = self._pipelined(self._meta, keys, args, calibration_id, False)
+            snapshot, queued = self._pipelined(self._meta, keys, args, queue_of=calibration_id)
         return _meta_from(calibration_id, snapshot, queued) if snapshot else None
 
     async def get_meta_async(self, calibration_id: str) -> CalibrationMeta | None:
         keys, args = _meta_call(calibration_id)
         with self._guard():
             snapshot, queued = await self._pipelined_async(
-                self._meta, keys, args, calibration_id, False
+                self._meta, keys, args, queue_of=calibration_id
             )
         return _meta_from(calibration_id, snapshot, queued) if snapshot else None
 
@@ -610,12 +648,10 @@ class RedisStore:
         proposals: list[str],
     ) -> bool:
         k = CalibrationKeys(calibration_id)
-        with self._guard(), self._durable() as one:
-            done = self._swap(
-                keys=[k.meta, k.state, k.proposals],
-                args=[str(expected_version), blob, str(round_), engine_status, *proposals],
-                client=one,
-            )
+        keys = [k.meta, k.state, k.proposals]
+        args = [str(expected_version), blob, str(round_), engine_status, *proposals]
+        with self._guard():
+            done, _ = self._pipelined(self._swap, keys, args, durable=True)
         return int(done) == 1
 
     # runs
@@ -631,7 +667,9 @@ class RedisStore:
     ) -> LeaseResult:
         keys, args = _lease_call(calibration_id, count, worker, now, lease_seconds, max_runs)
         with self._guard():
-            out, queued = self._pipelined(self._lease, keys, args, calibration_id, False)
+            out, queued = self._pipelined(
+                self._lease, keys, args, queue_of=calibration_id, durable=True
+            )
         return _lease_result(calibration_id, out, queued, worker, now, now + lease_seconds)
 
     async def lease_async(
@@ -646,7 +684,7 @@ class RedisStore:
         keys, args = _lease_call(calibration_id, count, worker, now, lease_seconds, max_runs)
         with self._guard():
             out, queued = await self._pipelined_async(
-                self._lease, keys, args, calibration_id, False
+                self._lease, keys, args, queue_of=calibration_id, durable=True
             )
         return _lease_result(calibration_id, out, queued, worker, now, now + lease_seconds)
 
@@ -679,7 +717,9 @@ class RedisStore:
     ) -> CalibrationMeta | None:
         keys, args = _finish_call(calibration_id, run_id, epoch, state, result_json, now)
         with self._guard():
-            out, queued = self._pipelined(self._finish, keys, args, calibration_id, True)
+            out, queued = self._pipelined(
+                self._finish, keys, args, queue_of=calibration_id, durable=True
+            )
         return None if isinstance(out, int) else _meta_from(calibration_id, out[1], queued)
 
     async def finish_run_async(
@@ -694,7 +734,7 @@ class RedisStore:
         keys, args = _finish_call(calibration_id, run_id, epoch, state, result_json, now)
         with self._guard():
             out, queued = await self._pipelined_async(
-                self._finish, keys, args, calibration_id, True
+                self._finish, keys, args, queue_of=calibration_id, durable=True
             )
         return None if isinstance(out, int) else _meta_from(calibration_id, out[1], queued)
 
@@ -703,11 +743,10 @@ class RedisStore:
     ) -> list[str]:
         k = CalibrationKeys(calibration_id)
         flat = [part for item in items for part in item]
-        with self._guard(), self._durable() as one:
-            out = self._import(
-                keys=[k.meta, k.runs, k.finished],
-                args=[k.run_prefix, _time(now), *flat],
-                client=one,
+        keys = [k.meta, k.runs, k.finished]
+        with self._guard():
+            out, _ = self._pipelined(
+                self._import, keys, [k.run_prefix, _time(now), *flat], durable=True
             )
         if out and out[0] == -1:
             return []

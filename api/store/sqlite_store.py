@@ -116,7 +116,9 @@ class SqliteStore:
         self._local = threading.local()
         self._all: list[sqlite3.Connection] = []
         self._lock = threading.Lock()
-        self._writer = threading.Lock()
+        # Reentrant, so that a nested write fails as SQLite refuses a nested BEGIN, rather
+        # than deadlocking.
+        self._writer = threading.RLock()
         self._conn().executescript(_SCHEMA)
 
     def _conn(self) -> sqlite3.Connection:
@@ -139,12 +141,18 @@ class SqliteStore:
 
     @contextmanager
     def _write(self) -> Iterator[sqlite3.Connection]:
-        # Writers of this process queue on a lock rather than on SQLite's busy handler, which
-        # polls with sleeps of up to 100 ms: under many concurrent requests those sleeps,
-        # not the commits, would set the pace. Other processes (refit workers) still meet
-        # the busy timeout.
+        # The writers of this store queue on a lock rather than on SQLite's busy handler,
+        # which polls with sleeps of up to 100 ms: under many concurrent requests those
+        # sleeps, not the commits, would set the pace. Other connections (refit workers,
+        # another store on the file) still meet the busy timeout. One deadline covers both
+        # waits, so a writer gives up (503) after the busy timeout whatever queues ahead.
+        deadline = time.monotonic() + BUSY_TIMEOUT_MS / 1000
+        if not self._writer.acquire(timeout=BUSY_TIMEOUT_MS / 1000):
+            raise StoreUnavailable("sqlite busy: earlier writes did not finish in time")
         db = self._conn()
-        with self._writer:
+        try:
+            remaining_ms = max(int((deadline - time.monotonic()) * 1000), 1)
+            db.execute(f"PRAGMA busy_timeout = {remaining_ms}")
             try:
                 db.execute("BEGIN IMMEDIATE")
             except sqlite3.OperationalError as exc:
@@ -159,6 +167,9 @@ class SqliteStore:
             except sqlite3.OperationalError as exc:
                 db.execute("ROLLBACK")
                 raise StoreUnavailable(f"sqlite commit failed: {exc}") from exc
+        finally:
+            db.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
+            self._writer.release()
 
     @contextmanager
     def _read(self) -> Iterator[sqlite3.Connection]:

@@ -159,7 +159,7 @@ class Store(Protocol):
         """Replace state and proposal queue if the version is still ``expected_version``."""
 
     # runs
-    def lease(
+    async def lease_async(
         self,
         calibration_id: str,
         count: int,
@@ -171,24 +171,13 @@ class Store(Protocol):
         """Expire overdue leases, then hand out up to ``count`` points (re-queued first)
         while the calibration is open: engine status "collecting" and no failure recorded."""
 
-    async def lease_async(
-        self,
-        calibration_id: str,
-        count: int,
-        worker: str,
-        now: float,
-        lease_seconds: float,
-        max_runs: int,
-    ) -> LeaseResult:
-        """`lease` for the event loop (the lease route awaits it)."""
-
     def expire(self, calibration_id: str, now: float) -> int:
         """Expire overdue leases; returns how many."""
 
     def get_run(self, calibration_id: str, run_id: str) -> RunRecord | None:
         """One run, or None."""
 
-    def finish_run(
+    async def finish_run_async(
         self,
         calibration_id: str,
         run_id: str,
@@ -203,17 +192,6 @@ class Store(Protocol):
         a refit without another read); None means nothing was written: the run changed since
         it was read (expired or finished) or is gone, so read it again.
         """
-
-    async def finish_run_async(
-        self,
-        calibration_id: str,
-        run_id: str,
-        epoch: int,
-        state: str,
-        result_json: str,
-        now: float,
-    ) -> CalibrationMeta | None:
-        """`finish_run` for the event loop (the report route awaits it)."""
 
     def import_runs(
         self, calibration_id: str, items: list[tuple[str, str]], now: float

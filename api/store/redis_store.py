@@ -656,22 +656,6 @@ class RedisStore:
 
     # runs
 
-    def lease(
-        self,
-        calibration_id: str,
-        count: int,
-        worker: str,
-        now: float,
-        lease_seconds: float,
-        max_runs: int,
-    ) -> LeaseResult:
-        keys, args = _lease_call(calibration_id, count, worker, now, lease_seconds, max_runs)
-        with self._guard():
-            out, queued = self._pipelined(
-                self._lease, keys, args, queue_of=calibration_id, durable=True
-            )
-        return _lease_result(calibration_id, out, queued, worker, now, now + lease_seconds)
-
     async def lease_async(
         self,
         calibration_id: str,
@@ -705,22 +689,6 @@ class RedisStore:
         if not raw:
             return None
         return RunRecord.from_fields({str(_s(a)): str(_s(b)) for a, b in raw.items()})
-
-    def finish_run(
-        self,
-        calibration_id: str,
-        run_id: str,
-        epoch: int,
-        state: str,
-        result_json: str,
-        now: float,
-    ) -> CalibrationMeta | None:
-        keys, args = _finish_call(calibration_id, run_id, epoch, state, result_json, now)
-        with self._guard():
-            out, queued = self._pipelined(
-                self._finish, keys, args, queue_of=calibration_id, durable=True
-            )
-        return None if isinstance(out, int) else _meta_from(calibration_id, out[1], queued)
 
     async def finish_run_async(
         self,

@@ -339,7 +339,7 @@ class SqliteStore:
             )
         return len(rows)
 
-    def lease(
+    def _lease(
         self,
         calibration_id: str,
         count: int,
@@ -348,6 +348,7 @@ class SqliteStore:
         lease_seconds: float,
         max_runs: int,
     ) -> LeaseResult:
+        """`Store.lease_async` in the calling thread: one write transaction."""
         expires = now + lease_seconds
         with self._write() as db:
             row = db.execute(
@@ -410,7 +411,7 @@ class SqliteStore:
         max_runs: int,
     ) -> LeaseResult:
         return await to_thread.run_sync(
-            self.lease, calibration_id, count, worker, now, lease_seconds, max_runs
+            self._lease, calibration_id, count, worker, now, lease_seconds, max_runs
         )
 
     def expire(self, calibration_id: str, now: float) -> int:
@@ -425,7 +426,7 @@ class SqliteStore:
             ).fetchone()
         return None if row is None else _record(row)
 
-    def finish_run(
+    def _finish_run(
         self,
         calibration_id: str,
         run_id: str,
@@ -434,6 +435,7 @@ class SqliteStore:
         result_json: str,
         now: float,
     ) -> CalibrationMeta | None:
+        """`Store.finish_run_async` in the calling thread: one write transaction."""
         with self._write() as db:
             if (
                 db.execute("SELECT 1 FROM calibrations WHERE id = ?", (calibration_id,)).fetchone()
@@ -475,7 +477,7 @@ class SqliteStore:
         now: float,
     ) -> CalibrationMeta | None:
         return await to_thread.run_sync(
-            self.finish_run, calibration_id, run_id, epoch, state, result_json, now
+            self._finish_run, calibration_id, run_id, epoch, state, result_json, now
         )
 
     def import_runs(

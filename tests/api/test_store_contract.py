@@ -1,11 +1,13 @@
-import asyncio
 import json
 import sqlite3
 import threading
 import time
+from dataclasses import dataclass
 from types import SimpleNamespace
+from typing import Any
 
 import pytest
+from anyio.from_thread import BlockingPortal
 
 from honing.api.store import (
     CalibrationMeta,
@@ -38,6 +40,25 @@ def make(store: Store, cid: str = "c1", proposals: int = 5) -> None:
     )
 
 
+@dataclass
+class Steps:
+    """The store's event-loop steps called from test code, as the server's loop would."""
+
+    store: Store
+    portal: BlockingPortal
+
+    def lease(self, *args: Any) -> LeaseResult:
+        return self.portal.call(self.store.lease_async, *args)
+
+    def finish(self, *args: Any) -> CalibrationMeta | None:
+        return self.portal.call(self.store.finish_run_async, *args)
+
+
+@pytest.fixture
+def steps(store: Store, portal: BlockingPortal) -> Steps:
+    return Steps(store, portal)
+
+
 def done(value: float) -> str:
     return json.dumps({"outputs": {"y": [value]}, "error": None, "trust": 1.0})
 
@@ -54,79 +75,42 @@ def test_create_and_read_back(store: Store) -> None:
     assert store.load_state("nope") is None
 
 
-def test_async_metadata_read_agrees_with_the_sync_one(store: Store) -> None:
+def test_async_metadata_read_agrees_with_the_sync_one(store: Store, steps: Steps) -> None:
     make(store)
-    store.lease("c1", 2, "w", 10.0, 60.0, 100)
+    steps.lease("c1", 2, "w", 10.0, 60.0, 100)
     store.enqueue_refit("c1", 1.0)
-
-    async def read() -> tuple[object, object]:
-        try:
-            return await store.get_meta_async("c1"), await store.get_meta_async("nope")
-        finally:
-            await store.aclose()
-
-    meta, missing = asyncio.run(read())
-    assert meta == store.get_meta("c1") and missing is None
+    meta = steps.portal.call(store.get_meta_async, "c1")
+    assert meta == store.get_meta("c1") and steps.portal.call(store.get_meta_async, "x") is None
 
 
-def test_async_lease_and_finish_follow_the_same_rules(store: Store) -> None:
-    make(store, "c1")
-    make(store, "c2")
-
-    async def steps() -> tuple[LeaseResult, CalibrationMeta | None, CalibrationMeta | None]:
-        try:
-            leased = await store.lease_async("c1", 2, "w", 10.0, 60.0, 100)
-            run = leased.runs[0]
-            stale = await store.finish_run_async(
-                "c1", run.run_id, run.epoch + 1, "done", done(1.0), 11.0
-            )
-            after = await store.finish_run_async(
-                "c1", run.run_id, run.epoch, "done", done(1.0), 11.0
-            )
-            return leased, stale, after
-        finally:
-            await store.aclose()
-
-    leased, stale, after = asyncio.run(steps())
-    twin = store.lease("c2", 2, "w", 10.0, 60.0, 100)
-    fields = [(r.run_id, r.epoch, r.point, r.lease_expires_at) for r in leased.runs]
-    assert fields == [(r.run_id, r.epoch, r.point, r.lease_expires_at) for r in twin.runs]
-    assert leased.meta is not None and twin.meta is not None
-    assert (leased.meta.leased, leased.meta.queued) == (twin.meta.leased, twin.meta.queued)
-    assert stale is None  # fenced: a superseded epoch writes nothing
-    assert after is not None and (after.done, after.leased) == (1, 1)
-    record = store.get_run("c1", leased.runs[0].run_id)
-    assert record is not None and record.state == "done"
-
-
-def test_lease_hands_out_in_order_with_fresh_ids(store: Store) -> None:
+def test_lease_hands_out_in_order_with_fresh_ids(store: Store, steps: Steps) -> None:
     make(store)
-    first = store.lease("c1", 2, "w", 10.0, 60.0, 100).runs
-    second = store.lease("c1", 10, "w", 10.0, 60.0, 100).runs
+    first = steps.lease("c1", 2, "w", 10.0, 60.0, 100).runs
+    second = steps.lease("c1", 10, "w", 10.0, 60.0, 100).runs
     values = [r.point["parameters"]["a"] for r in first + second]
     assert values == [0.0, 1.0, 2.0, 3.0, 4.0]
     assert len({r.run_id for r in first + second}) == 5
     assert first[0].state == "leased" and first[0].lease_expires_at == 70.0
     assert store.get_meta("c1").leased == 5  # type: ignore[union-attr]
-    assert store.lease("c1", 3, "w", 10.0, 60.0, 100).runs == []
+    assert steps.lease("c1", 3, "w", 10.0, 60.0, 100).runs == []
 
 
-def test_lease_respects_the_budget(store: Store) -> None:
+def test_lease_respects_the_budget(store: Store, steps: Steps) -> None:
     make(store, proposals=10)
-    runs = store.lease("c1", 3, "w", 0.0, 60.0, 4).runs
-    assert store.finish_run("c1", runs[0].run_id, runs[0].epoch, "done", done(1.0), 1.0)
+    runs = steps.lease("c1", 3, "w", 0.0, 60.0, 4).runs
+    assert steps.finish("c1", runs[0].run_id, runs[0].epoch, "done", done(1.0), 1.0)
     # done 1 + leased 2 leaves room for one more under max_runs 4.
-    assert len(store.lease("c1", 5, "w", 1.0, 60.0, 4).runs) == 1
-    assert store.lease("c1", 5, "w", 1.0, 60.0, 4).runs == []
+    assert len(steps.lease("c1", 5, "w", 1.0, 60.0, 4).runs) == 1
+    assert steps.lease("c1", 5, "w", 1.0, 60.0, 4).runs == []
 
 
-def test_finish_run_is_fenced_by_epoch(store: Store) -> None:
+def test_finish_run_is_fenced_by_epoch(store: Store, steps: Steps) -> None:
     make(store)
-    (run,) = store.lease("c1", 1, "w", 0.0, 60.0, 100).runs
-    assert not store.finish_run("c1", run.run_id, run.epoch + 1, "done", done(1.0), 1.0)
-    assert store.finish_run("c1", run.run_id, run.epoch, "done", done(1.0), 1.0)
+    (run,) = steps.lease("c1", 1, "w", 0.0, 60.0, 100).runs
+    assert not steps.finish("c1", run.run_id, run.epoch + 1, "done", done(1.0), 1.0)
+    assert steps.finish("c1", run.run_id, run.epoch, "done", done(1.0), 1.0)
     # Finished: the old epoch no longer matches, so a second write is refused.
-    assert not store.finish_run("c1", run.run_id, run.epoch, "done", done(2.0), 1.0)
+    assert not steps.finish("c1", run.run_id, run.epoch, "done", done(2.0), 1.0)
     stored = store.get_run("c1", run.run_id)
     assert stored is not None and stored.state == "done"
     assert stored.result == {"outputs": {"y": [1.0]}, "error": None, "trust": 1.0}
@@ -134,31 +118,31 @@ def test_finish_run_is_fenced_by_epoch(store: Store) -> None:
     assert meta is not None and (meta.done, meta.leased) == (1, 0)
 
 
-def test_finish_run_returns_the_metadata_after_the_write(store: Store) -> None:
+def test_finish_run_returns_the_metadata_after_the_write(store: Store, steps: Steps) -> None:
     make(store)
-    _, second = store.lease("c1", 2, "w", 0.0, 60.0, 100).runs
+    _, second = steps.lease("c1", 2, "w", 0.0, 60.0, 100).runs
     store.enqueue_refit("c1", 0.5)
-    after = store.finish_run("c1", second.run_id, second.epoch, "failed", done(1.0), 1.0)
+    after = steps.finish("c1", second.run_id, second.epoch, "failed", done(1.0), 1.0)
     assert after is not None
     assert (after.done, after.failed, after.leased, after.queued) == (0, 1, 1, 3)
     assert after.refit_pending and after.state_version == 1
     assert after == store.get_meta("c1")
-    assert not store.finish_run("c1", "r999", 1, "done", done(1.0), 1.0)
+    assert not steps.finish("c1", "r999", 1, "done", done(1.0), 1.0)
 
 
-def test_expired_lease_is_requeued_first_and_late_result_kept(store: Store) -> None:
+def test_expired_lease_is_requeued_first_and_late_result_kept(store: Store, steps: Steps) -> None:
     make(store, proposals=3)
-    (old,) = store.lease("c1", 1, "w", 0.0, 10.0, 100).runs
-    lease = store.lease("c1", 1, "w", 10.0, 10.0, 100)
+    (old,) = steps.lease("c1", 1, "w", 0.0, 10.0, 100).runs
+    lease = steps.lease("c1", 1, "w", 10.0, 10.0, 100)
     assert lease.expired == 1
     (again,) = lease.runs
     assert again.run_id != old.run_id
     assert again.point == old.point
     expired = store.get_run("c1", old.run_id)
     assert expired is not None and expired.state == "expired" and expired.epoch == old.epoch + 1
-    assert not store.finish_run("c1", old.run_id, old.epoch, "done", done(1.0), 11.0)
-    assert store.finish_run("c1", old.run_id, expired.epoch, "done", done(1.0), 11.0)
-    assert store.finish_run("c1", again.run_id, again.epoch, "failed", done(1.0), 12.0)
+    assert not steps.finish("c1", old.run_id, old.epoch, "done", done(1.0), 11.0)
+    assert steps.finish("c1", old.run_id, expired.epoch, "done", done(1.0), 11.0)
+    assert steps.finish("c1", again.run_id, again.epoch, "failed", done(1.0), 12.0)
     meta = store.get_meta("c1")
     assert meta is not None and (meta.done, meta.failed, meta.leased) == (1, 1, 0)
     assert [r.run_id for r in store.finished_runs("c1")] == [old.run_id, again.run_id]
@@ -166,11 +150,11 @@ def test_expired_lease_is_requeued_first_and_late_result_kept(store: Store) -> N
     assert [r.run_id for r in store.list_runs("c1", "failed")] == [again.run_id]
 
 
-def test_expire_runs_lazily_on_report(store: Store) -> None:
+def test_expire_runs_lazily_on_report(store: Store, steps: Steps) -> None:
     make(store, proposals=3)
-    a, b = store.lease("c1", 2, "w", 0.0, 10.0, 100).runs
+    a, b = steps.lease("c1", 2, "w", 0.0, 10.0, 100).runs
     # The report step itself expires both overdue leases, so the epoch it was given is stale.
-    assert not store.finish_run("c1", a.run_id, a.epoch, "done", done(1.0), 20.0)
+    assert not steps.finish("c1", a.run_id, a.epoch, "done", done(1.0), 20.0)
     assert [store.get_run("c1", r.run_id).state for r in (a, b)] == ["expired", "expired"]  # type: ignore[union-attr]
     meta = store.get_meta("c1")
     assert meta is not None and (meta.queued, meta.leased) == (3, 0)
@@ -188,24 +172,24 @@ def test_import_adds_done_runs_in_one_step(store: Store) -> None:
     assert store.import_runs("missing", [(point(1), done(1.0))], 5.0) == []
 
 
-def test_swap_state_is_compare_and_swap(store: Store) -> None:
+def test_swap_state_is_compare_and_swap(store: Store, steps: Steps) -> None:
     make(store)
-    store.lease("c1", 1, "w", 0.0, 60.0, 100)
+    steps.lease("c1", 1, "w", 0.0, 60.0, 100)
     assert store.swap_state("c1", 1, b"new", 1, "collecting", [point(50), point(51)])
     assert not store.swap_state("c1", 1, b"stale", 1, "collecting", [point(60)])
     assert store.load_state("c1") == (2, b"new")
     meta = store.get_meta("c1")
     assert meta is not None and (meta.round, meta.queued, meta.state_version) == (1, 2, 2)
-    runs = store.lease("c1", 5, "w", 1.0, 60.0, 100).runs
+    runs = steps.lease("c1", 5, "w", 1.0, 60.0, 100).runs
     assert [r.point["parameters"]["a"] for r in runs] == [50.0, 51.0]
     assert not store.swap_state("missing", 1, b"x", 1, "collecting", [])
 
 
-def test_delete_removes_everything(store: Store) -> None:
+def test_delete_removes_everything(store: Store, steps: Steps) -> None:
     make(store)
     make(store, "c2")
-    run = store.lease("c1", 1, "w", 0.0, 60.0, 100).runs[0]
-    store.finish_run("c1", run.run_id, run.epoch, "done", done(1.0), 1.0)
+    run = steps.lease("c1", 1, "w", 0.0, 60.0, 100).runs[0]
+    steps.finish("c1", run.run_id, run.epoch, "done", done(1.0), 1.0)
     store.enqueue_refit("c1", 1.0)
     assert store.delete("c1")
     assert not store.delete("c1")
@@ -272,26 +256,26 @@ def test_refit_failures_retry_then_fail(store: Store) -> None:
 
 
 @pytest.mark.parametrize("count", [0, 1])
-def test_lease_unknown_calibration_is_empty(store: Store, count: int) -> None:
-    result = store.lease("missing", count, "w", 0.0, 60.0, 100)
+def test_lease_unknown_calibration_is_empty(store: Store, steps: Steps, count: int) -> None:
+    result = steps.lease("missing", count, "w", 0.0, 60.0, 100)
     assert result.runs == [] and result.meta is None
     assert store.get_meta("missing") is None
 
 
-def test_lease_returns_the_metadata_and_stops_once_closed(store: Store) -> None:
+def test_lease_returns_the_metadata_and_stops_once_closed(store: Store, steps: Steps) -> None:
     make(store)
-    result = store.lease("c1", 2, "w", 0.0, 60.0, 100)
+    result = steps.lease("c1", 2, "w", 0.0, 60.0, 100)
     assert result.meta == store.get_meta("c1")
     assert result.meta is not None and (result.meta.leased, result.meta.queued) == (2, 3)
     # Converged (a state swap with a final engine status): nothing more is handed out.
     assert store.swap_state("c1", 1, b"s2", 1, "converged", [point(9)])
-    closed = store.lease("c1", 5, "w", 1.0, 60.0, 100)
+    closed = steps.lease("c1", 5, "w", 1.0, 60.0, 100)
     assert closed.runs == [] and closed.meta is not None
     assert closed.meta.engine_status == "converged" and closed.meta.queued == 1
     # Failed (refits kept failing): likewise.
     make(store, "c2")
     assert store.record_refit_failure("c2", "boom", 1, 5.0)
-    assert store.lease("c2", 5, "w", 1.0, 60.0, 100).runs == []
+    assert steps.lease("c2", 5, "w", 1.0, 60.0, 100).runs == []
 
 
 @pytest.mark.parametrize(("queue_of", "wait"), [("c1", True), ("c1", False), (None, True)])

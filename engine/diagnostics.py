@@ -12,6 +12,7 @@ __all__ = [
     "TRUST_SCALE",
     "VALIDATION_TOLERANCE",
     "converged",
+    "fit_trust",
     "gaussian_kl",
     "kl_tolerance",
     "marginal_kl",
@@ -44,6 +45,35 @@ def trust_from_error(rms_error: float) -> float:
     if not np.isfinite(rms_error):
         return TRUST_FLOOR
     return float(max(1.0 / (1.0 + (rms_error / TRUST_SCALE) ** 2), TRUST_FLOOR))
+
+
+def fit_trust(errors: np.ndarray) -> np.ndarray:
+    """Fit weights of runs from their prediction errors, relative to the typical error.
+
+    Each run's trust (`trust_from_error`) with its rms prediction error divided by
+    ``max(1, median)`` of the finite errors: a run counts as surprising when the surrogate
+    predicted it much worse than the others, not merely worse than the noise. While the
+    surrogate is still poor everywhere, absolute trust would give every run it predicted a
+    weight near the floor, against 1 for the initial design far out, and the fit would
+    follow the design instead of the posterior region. Runs without a prediction get 1.
+
+    Parameters
+    ----------
+    errors : ndarray, shape (n_runs,)
+        Rms of (true - predicted) whitened residuals per run; NaN without a prediction.
+
+    Returns
+    -------
+    ndarray, shape (n_runs,)
+    """
+    errors = np.asarray(errors, dtype=float)
+    finite = np.isfinite(errors)
+    if not finite.any():
+        return np.ones(errors.shape)
+    relative = errors[finite] / max(1.0, float(np.median(errors[finite])))
+    out = np.ones(errors.shape)
+    out[finite] = np.maximum(1.0 / (1.0 + (relative / TRUST_SCALE) ** 2), TRUST_FLOOR)
+    return out
 
 
 def gaussian_kl(m0: np.ndarray, s0: np.ndarray, m1: np.ndarray, s1: np.ndarray) -> float:

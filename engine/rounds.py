@@ -7,8 +7,9 @@ state bit for bit.
 
 The round, in order:
 
-1. keep the newest `retain_fraction` of successful runs (at least `retained_floor`), each
-   weighted by its trust index and by its proximity to the previous posterior;
+1. keep the newest `retain_fraction` of successful runs (at least `retained_floor`) and the
+   older ones inside the previous posterior's bulk, each weighted by its trust relative to
+   the typical prediction error and by its proximity to the previous posterior;
 2. score the previous surrogate on the runs finished since it was fitted (validation error);
 3. fit the output reduction and a sparse expansion per component in a frame local to the
    retained runs;
@@ -29,6 +30,7 @@ from scipy import stats
 from honing.engine.design import initial_design, select_batch
 from honing.engine.diagnostics import (
     converged,
+    fit_trust,
     gaussian_kl,
     kl_tolerance,
     marginal_kl,
@@ -50,6 +52,7 @@ __all__ = [
     "refit",
     "refit_due",
     "retained_floor",
+    "retained_runs",
     "start",
     "trust_index",
 ]
@@ -99,6 +102,34 @@ def proximity_weight(mean: np.ndarray, cov: np.ndarray, xi: np.ndarray) -> np.nd
     d2 = np.sum(np.linalg.solve(chol, (xi - mean).T) ** 2, axis=0)
     bulk = float(stats.chi2.ppf(BULK_PROBABILITY, mean.size))
     return np.minimum(1.0, bulk / np.maximum(d2, 1e-300))
+
+
+def retained_runs(spec: CalibrationSpec, ok: np.ndarray, nearness: np.ndarray) -> np.ndarray:
+    """Indices of the runs a fit keeps, in completion order.
+
+    The newest `retain_fraction` of successful runs (at least `retained_floor`), and every
+    older successful run inside the previous posterior's bulk (``nearness`` 1, see
+    `proximity_weight`): a run where the posterior has its mass informs the fit as much as
+    a new one there, however early it ran, while old runs far out, which a polynomial fitted
+    on a narrow region can only extrapolate to, are left out.
+
+    Parameters
+    ----------
+    spec : CalibrationSpec
+    ok : ndarray of bool, shape (n_runs,)
+        Successful runs.
+    nearness : ndarray, shape (n_runs,)
+        `proximity_weight` of every run (all 1 before the first fit).
+
+    Returns
+    -------
+    ndarray of int
+    """
+    order = np.flatnonzero(ok)
+    keep = max(retained_floor(spec), int(np.ceil(spec.retain_fraction * order.size)))
+    newest = np.zeros(ok.shape, dtype=bool)
+    newest[order[-keep:]] = True
+    return np.flatnonzero(newest | (ok & (nearness >= 1.0)))
 
 
 def retained_floor(spec: CalibrationSpec) -> int:
@@ -224,17 +255,15 @@ def refit(
     if ok.sum() < 2:
         return _without_fit(spec, state, runs, xi_all, rng, families)
 
-    order = np.flatnonzero(ok)
-    keep = max(retained_floor(spec), int(np.ceil(spec.retain_fraction * order.size)))
-    kept = order[-keep:]
-    residuals = whiten(spec, runs.outputs[kept])
-    weights = np.clip(runs.trust[kept], 1e-12, 1.0)
     # After the first fit, runs follow the posterior: weight them by nearness to it and
     # decorrelate the frame; the first fit sees the initial design only.
     focused = "post_mean" in state.arrays
+    nearness = np.ones(runs.n_runs)
     if focused:
-        previous = state.arrays["post_mean"], state.arrays["post_cov"]
-        weights = weights * proximity_weight(*previous, xi_all[kept])
+        nearness = proximity_weight(state.arrays["post_mean"], state.arrays["post_cov"], xi_all)
+    kept = retained_runs(spec, ok, nearness)
+    residuals = whiten(spec, runs.outputs[kept])
+    weights = fit_trust(runs.error[kept]) * nearness[kept]
     frame = Frame.local(xi_all[kept], weights, decorrelate=focused)
     validation = _validation_error(state, runs)
 

@@ -2,16 +2,21 @@
 
 Reference coordinates ``xi`` (see `honing.engine.priors`) are mapped affinely to local
 coordinates ``z = ((xi - center) / scale) W``: centred and scaled on the retained runs, then
-decorrelated by the inverse symmetric square root ``W`` of their weighted correlation matrix
-(the whitening closest to the identity, so coordinates keep their meaning when the runs are
-nearly uncorrelated). A total-degree polynomial space is unchanged by an affine map, so the
-local frame costs nothing in what the surrogate can represent, and it keeps the design matrix
-well conditioned when the posterior is narrow, correlated and far from the prior's centre.
-Without ``W``, strongly correlated parameters give nearly collinear linear terms, whose large
-``tr(C^-1)`` inflates the corrected leave-one-out error of every larger model (seen: a B3
-benchmark fit that kept 2 terms where about 90 were needed). All components share one sparse
-set of terms chosen for their summed error, so a fit costs one selection path and a
-prediction one design matrix, whatever the number of components.
+rotated onto the principal axes of their weighted correlation matrix and scaled to unit
+variance along each (``W = V diag(lambda)^(-1/2)``, axes by decreasing ``lambda``). A
+total-degree polynomial space is unchanged by an affine map, so the local frame costs nothing
+in what the surrogate can represent, and it keeps the design matrix well conditioned when the
+posterior is narrow, correlated and far from the prior's centre. The axes matter to a sparse
+fit: the data inform a few combinations of parameters, along which the outputs change most,
+and on the principal axes each such combination is one coordinate, so the outputs are close
+to sums of a few coordinates' polynomials and the hyperbolic (low-interaction) candidate set
+holds them in few terms; a symmetric whitening spreads each combination over every
+coordinate and needs interaction terms. Without any decorrelation, strongly correlated
+parameters give nearly collinear linear terms, whose large ``tr(C^-1)`` inflates the corrected
+leave-one-out error of every larger model (seen: a B3 benchmark fit that kept 2 terms where
+about 90 were needed). All components share one sparse set of terms chosen for their summed
+error, so a fit costs one selection path and a prediction one design matrix, whatever the
+number of components.
 """
 
 from __future__ import annotations
@@ -63,11 +68,13 @@ class Frame:
     @classmethod
     def local(cls, xi: np.ndarray, weights: np.ndarray, decorrelate: bool = True) -> Frame:
         """A frame centred on the weighted mean of the runs, scaled by their weighted sd and,
-        with `decorrelate`, decorrelated by ``corr^(-1/2)``.
+        with `decorrelate`, turned onto the principal axes of their weighted correlation.
 
         Local coordinates then have unit spread and no linear correlation under the weights,
-        which suits the Hermite family. A space-filling design is uncorrelated by
-        construction; whitening it would only turn sampling noise into a rotation.
+        which suits the Hermite family. Each axis's sign is fixed so that its largest entry
+        is positive, so that the same runs always give the same frame. A space-filling design
+        is uncorrelated by construction; rotating it would only turn sampling noise into an
+        arbitrary rotation.
         """
         w = weights / weights.sum()
         center = w @ xi
@@ -77,8 +84,11 @@ class Frame:
         standard = (xi - center) / scale
         corr = standard.T @ (standard * w[:, None])
         values, vectors = np.linalg.eigh((corr + corr.T) / 2)
+        values, vectors = values[::-1], vectors[:, ::-1]
+        largest = np.argmax(np.abs(vectors), axis=0)
+        vectors = vectors * np.sign(vectors[largest, np.arange(vectors.shape[1])])
         root = 1.0 / np.sqrt(np.maximum(values, MIN_CORRELATION_EIGENVALUE))
-        return cls(center, scale, ("hermite",) * xi.shape[1], (vectors * root) @ vectors.T)
+        return cls(center, scale, ("hermite",) * xi.shape[1], vectors * root)
 
     def to_local(self, xi: np.ndarray) -> np.ndarray:
         standard = (xi - self.center) / self.scale

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from honing.engine.diagnostics import gaussian_kl, kl_tolerance, trust_from_error
+from honing.engine.diagnostics import fit_trust, gaussian_kl, kl_tolerance, trust_from_error
 
 
 def test_gaussian_kl_one_dimension_closed_form():
@@ -53,3 +53,17 @@ def test_trust_is_one_for_perfect_and_decreasing():
     assert all(a > b for a, b in itertools.pairwise(values[:-1]))
     assert 0 < values[-1] <= values[-2]
     assert trust_from_error(float("nan")) == values[-1]
+
+
+def test_fit_trust_is_absolute_for_a_good_surrogate_and_relative_for_a_poor_one():
+    # Median error under one noise sd: the run's own trust index, unchanged.
+    good = np.array([0.1, 0.3, 0.5, 4.0, np.nan])
+    expected = [trust_from_error(e) for e in good[:4]] + [1.0]
+    np.testing.assert_array_equal(fit_trust(good), expected)
+    # Every error 30 times larger: the same weights, since only the ratio to the median
+    # (here 30 * 0.4 = 12) counts once the median passes one noise sd.
+    poor = np.array([3.0, 9.0, 15.0, 120.0, np.nan])
+    relative = [trust_from_error(e / 12.0) for e in poor[:4]] + [1.0]
+    np.testing.assert_allclose(fit_trust(poor), relative, rtol=1e-15)
+    assert fit_trust(poor)[1] > 0.5 > trust_from_error(9.0)
+    np.testing.assert_array_equal(fit_trust(np.full(3, np.nan)), np.ones(3))

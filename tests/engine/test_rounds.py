@@ -9,7 +9,7 @@ from scipy.spatial.distance import mahalanobis
 from honing.engine.diagnostics import gaussian_kl
 from honing.engine.errors import ConflictError
 from honing.engine.loop import CalibrationLoop
-from honing.engine.rounds import _sorted_quantile, proximity_weight, refit
+from honing.engine.rounds import _sorted_quantile, proximity_weight, refit, retained_runs
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import state_from_bytes, state_to_bytes
 
@@ -260,6 +260,24 @@ def test_proximity_weight_follows_the_previous_posterior():
     np.testing.assert_array_equal(found[inside], 1.0)
     # 1e-4 relative: the table gives q to five figures.
     np.testing.assert_allclose(found[outside], q / d2[outside], rtol=1e-4)
+
+
+def test_retained_runs_are_the_newest_and_the_old_ones_inside_the_bulk():
+    # 40 runs, half retained by age (20 newest), runs 3 and 7 failed: the fit keeps the
+    # successful newest half and, of the older runs, only those with nearness 1.
+    spec = _spec(
+        [{"name": "a", "prior": {"kind": "normal", "mean": 0.0, "sd": 1.0}}],
+        [{"name": "y", "values": [0.0], "sd": 1.0}],
+        design={"initial_runs": 10},
+        surrogate={"retain_fraction": 0.5},
+    )
+    ok = np.ones(40, dtype=bool)
+    ok[[3, 7]] = False
+    nearness = np.full(40, 0.2)
+    nearness[[1, 3, 5, 30]] = 1.0
+    kept = retained_runs(spec, ok, nearness)
+    newest = np.arange(40)[ok][-19:]  # ceil(0.5 * 38) successful runs
+    np.testing.assert_array_equal(kept, np.concatenate([[1, 5], newest]))
 
 
 @pytest.mark.parametrize("n", [1, 2, 3, 40, 399, 400, 401])

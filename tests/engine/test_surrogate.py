@@ -34,15 +34,37 @@ def test_local_frame_whitens_under_the_weights():
     np.testing.assert_allclose(frame.scale, sd, rtol=1e-12)
 
 
-def test_whitening_is_nearly_the_identity_for_uncorrelated_runs():
-    # Symmetric whitening moves coordinates as little as any whitening can: for independent
-    # coordinates the sample correlation is I + O(1/sqrt(n)), and so is W.
+def test_frame_axes_are_the_principal_axes_of_the_correlation():
+    # A 2 x 2 correlation matrix [[1, r], [r, 1]] has eigenvectors (1, 1) / sqrt(2) with
+    # eigenvalue 1 + r and (1, -1) / sqrt(2) with 1 - r (closed form, common practice), so
+    # the frame's columns are those axes over sqrt(eigenvalue), the larger eigenvalue first.
     rng = np.random.default_rng(1)
-    xi = rng.normal(size=(4000, 6)) * np.array([0.1, 0.5, 1.0, 2.0, 3.0, 4.0])
+    base = rng.normal(size=(5000, 2))
+    xi = np.column_stack([base[:, 0], 0.8 * base[:, 0] + 0.6 * base[:, 1]]) * [0.3, 4.0]
     frame = Frame.local(xi, np.ones(xi.shape[0]))
     assert frame.whitening is not None
-    # 4 / sqrt(n): four times the sd of a sample correlation at n = 4000.
-    assert np.abs(frame.whitening - np.eye(6)).max() < 4 / np.sqrt(xi.shape[0])
+    r = np.corrcoef(xi, rowvar=False)[0, 1]
+    first = np.array([1.0, 1.0]) / np.sqrt(2 * (1 + r))
+    second = np.array([1.0, -1.0]) / np.sqrt(2 * (1 - r))
+    # 1e-10: both sides are the same few floating-point operations on unit quantities.
+    np.testing.assert_allclose(frame.whitening[:, 0], first, atol=1e-10)
+    sign = np.sign(frame.whitening[0, 1])
+    np.testing.assert_allclose(frame.whitening[:, 1], sign * second, atol=1e-10)
+
+
+def test_frame_is_the_same_for_the_same_runs_in_any_order():
+    # Each axis's sign is fixed by its largest entry, so a permutation of the runs (which
+    # changes nothing a fit depends on) gives the same frame to rounding.
+    rng = np.random.default_rng(4)
+    xi = _correlated_runs(rng)
+    weights = rng.uniform(0.1, 1.0, size=xi.shape[0])
+    order = rng.permutation(xi.shape[0])
+    a = Frame.local(xi, weights)
+    b = Frame.local(xi[order], weights[order])
+    assert a.whitening is not None and b.whitening is not None
+    # 1e-9: sums in another order differ by rounding, amplified by the inverse square root
+    # of the smallest eigenvalue (about 1e-4 here).
+    np.testing.assert_allclose(a.whitening, b.whitening, atol=1e-9)
 
 
 def test_runs_on_a_line_keep_a_finite_frame():

@@ -8,7 +8,7 @@ state bit for bit.
 The round, in order:
 
 1. keep the newest `retain_fraction` of successful runs (at least `retained_floor`) and the
-   older ones inside the previous posterior's bulk, each weighted by its trust relative to
+   older ones not far from the previous posterior's bulk, each weighted by its trust relative to
    the typical prediction error and by its proximity to the previous posterior;
 2. score the previous surrogate on the runs finished since it was fitted (validation error);
 3. fit the output reduction and a sparse expansion per component in a frame local to the
@@ -60,6 +60,15 @@ __all__ = [
 #: Probability of the previous posterior's Gaussian region inside which runs keep their full
 #: fit weight (`proximity_weight`).
 BULK_PROBABILITY = 0.99
+#: Power of the proximity weight ``(q / d^2)^k`` beyond that region. Above 1, so that a far
+#: run's share of the weighted second moments (``~ d^(2 - 2k)``) vanishes with its distance;
+#: with k = 1 every run far out adds about ``q`` to the frame's spread whatever its distance,
+#: and a few hundred early runs set the frame. Measured on B3 at delta = 8, refitting the
+#: runs of finished calibrations: k = 1.5 and 2 alike; k = 1 (4 seeds) 2.7 times and k = 3
+#: (2 seeds) twice their surrogate error.
+PROXIMITY_POWER = 2
+#: Older runs are retained out to this many bulk radii from the previous posterior.
+RETAIN_RADII = 100.0
 #: Prior draws behind the round-0 summary.
 PRIOR_DRAWS = 4000
 #: Posterior draws pushed through the surrogate for the predictive bands.
@@ -79,9 +88,10 @@ def proximity_weight(mean: np.ndarray, cov: np.ndarray, xi: np.ndarray) -> np.nd
     """Fit weight of runs by where they lie against the previous posterior.
 
     1 inside the `BULK_PROBABILITY` region of the previous posterior's Gaussian fit (squared
-    Mahalanobis distance under the chi-square quantile ``q``), ``q / d^2`` beyond it. The
-    surrogate only has to be accurate where the posterior has mass: early design points and
-    defensive draws far out still shape the fit, but no longer take its terms from the bulk.
+    Mahalanobis distance under the chi-square quantile ``q``), ``(q / d^2)^k`` beyond it
+    (`PROXIMITY_POWER`). The surrogate only has to be accurate where the posterior has mass:
+    early design points and defensive draws far out still tether the fit against wild
+    extrapolation, but no longer take its terms or its frame from the bulk.
 
     Parameters
     ----------
@@ -101,17 +111,19 @@ def proximity_weight(mean: np.ndarray, cov: np.ndarray, xi: np.ndarray) -> np.nd
         return np.ones(xi.shape[0])
     d2 = np.sum(np.linalg.solve(chol, (xi - mean).T) ** 2, axis=0)
     bulk = float(stats.chi2.ppf(BULK_PROBABILITY, mean.size))
-    return np.minimum(1.0, bulk / np.maximum(d2, 1e-300))
+    return np.minimum(1.0, bulk / np.maximum(d2, 1e-300)) ** PROXIMITY_POWER
 
 
 def retained_runs(spec: CalibrationSpec, ok: np.ndarray, nearness: np.ndarray) -> np.ndarray:
     """Indices of the runs a fit keeps, in completion order.
 
     The newest `retain_fraction` of successful runs (at least `retained_floor`), and every
-    older successful run inside the previous posterior's bulk (``nearness`` 1, see
+    older successful run within `RETAIN_RADII` radii of the previous posterior's bulk (see
     `proximity_weight`): a run where the posterior has its mass informs the fit as much as
-    a new one there, however early it ran, while old runs far out, which a polynomial fitted
-    on a narrow region can only extrapolate to, are left out.
+    a new one there, however early it ran, and runs beyond it but not too far out keep
+    the fit from extrapolating wildly at little weight; runs farther than that, such as the
+    initial design once a narrow posterior has left it, only add rows whose huge polynomial
+    values a low weight cannot tame.
 
     Parameters
     ----------
@@ -129,7 +141,7 @@ def retained_runs(spec: CalibrationSpec, ok: np.ndarray, nearness: np.ndarray) -
     keep = max(retained_floor(spec), int(np.ceil(spec.retain_fraction * order.size)))
     newest = np.zeros(ok.shape, dtype=bool)
     newest[order[-keep:]] = True
-    return np.flatnonzero(newest | (ok & (nearness >= 1.0)))
+    return np.flatnonzero(newest | (ok & (nearness >= RETAIN_RADII ** (-2 * PROXIMITY_POWER))))
 
 
 def retained_floor(spec: CalibrationSpec) -> int:

@@ -348,26 +348,77 @@ def table(results: list[dict[str, Any]]) -> str:
     return "\n".join(lines) + "\n"
 
 
+def seed_summary(results: list[dict[str, Any]]) -> str:
+    """Median and range over seeds of the headline figures, one row per problem."""
+    head = (
+        "| problem | seeds | runs (a) | sur_err (a) | (b)/(a) median [min, max] | "
+        "(c)/(a) median [min, max] | max mean_err (a) | sd ratio (a) range |"
+    )
+    lines = [head, "|" + " --- |" * (head.count("|") - 1)]
+    keys = list(dict.fromkeys(r["problem"] for r in results))
+    for key in keys:
+        group = [r for r in results if r["problem"] == key]
+        a = [r["adaptive"] for r in group]
+        ratio_b = np.array([r["ratio_b_a"] for r in group])
+        cells = [
+            key,
+            str(len(group)),
+            f"{np.median([x['runs'] for x in a]):.0f}",
+            f"{np.median([x['sur_err'] for x in a]):.3g}",
+            f"{np.median(ratio_b):.3g} [{ratio_b.min():.3g}, {ratio_b.max():.3g}]",
+        ]
+        if all("ratio_c_a" in r for r in group):
+            ratio_c = np.array([r["ratio_c_a"] for r in group])
+            bound = "" if all(r["emcee"]["reached"] for r in group) else " (some lower bounds)"
+            cells.append(
+                f"{np.median(ratio_c):.3g} [{ratio_c.min():.3g}, {ratio_c.max():.3g}]{bound}"
+            )
+        else:
+            cells.append("-")
+        cells.append(f"{max(x['mean_err'] for x in a):.3g}")
+        cells.append(f"{min(x['sd_lo'] for x in a):.3f}-{max(x['sd_hi'] for x in a):.3f}")
+        lines.append("| " + " | ".join(cells) + " |")
+    return "\n".join(lines) + "\n"
+
+
+def report(results: list[dict[str, Any]], seeds: int) -> str:
+    md = table(results)
+    if seeds > 1:
+        md += f"\nOver engine seeds 0-{seeds - 1}:\n\n" + seed_summary(results)
+    return md
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--out", type=Path, default=Path("out/benchmarks"))
     parser.add_argument("--only", help="run the problems whose key starts with this")
     parser.add_argument("--no-emcee", action="store_true", help="skip (c)")
+    parser.add_argument(
+        "--seeds",
+        type=int,
+        default=1,
+        help="run (a), (b) and (c) at engine seeds 0..SEEDS-1 and summarise over them",
+    )
     args = parser.parse_args(argv)
     args.out.mkdir(parents=True, exist_ok=True)
     t0 = time.perf_counter()
     results = []
-    for problem in all_problems():
-        if args.only and not problem.key.startswith(args.only):
-            continue
-        print(problem.key, flush=True)
-        result = bench_problem(problem, with_emcee=not args.no_emcee)
-        results.append(result)
-        plot(result, args.out)
-        (args.out / "accuracy.json").write_text(json.dumps(results, indent=1))
-        (args.out / "accuracy.md").write_text(table(results))
+    keys = [p.key for p in all_problems() if not args.only or p.key.startswith(args.only)]
+    for key in keys:
+        for seed in range(args.seeds):
+            problem = next(p for p in all_problems(seed) if p.key == key)
+            print(f"{key} (seed {seed})", flush=True)
+            result = bench_problem(problem, with_emcee=not args.no_emcee)
+            result["problem"], result["seed"] = key, seed
+            if args.seeds > 1:
+                result["key"] = f"{key}-s{seed}"
+            results.append(result)
+            plot(result, args.out)
+            (args.out / "accuracy.json").write_text(json.dumps(results, indent=1))
+            (args.out / "accuracy.md").write_text(report(results, args.seeds))
     total = time.perf_counter() - t0
-    md = table(results) + f"\nTotal wall time {total:.0f} s.\n\nTargets: {TARGETS}\n"
+    md = report(results, args.seeds)
+    md += f"\nTotal wall time {total:.0f} s.\n\nTargets: {TARGETS}\n"
     (args.out / "accuracy.md").write_text(md)
     print(md)
     return 0

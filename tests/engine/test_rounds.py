@@ -9,7 +9,14 @@ from scipy.spatial.distance import mahalanobis
 from honing.engine.diagnostics import gaussian_kl
 from honing.engine.errors import ConflictError
 from honing.engine.loop import CalibrationLoop
-from honing.engine.rounds import _sorted_quantile, proximity_weight, refit, retained_runs
+from honing.engine.rounds import (
+    PROXIMITY_POWER,
+    RETAIN_RADII,
+    _sorted_quantile,
+    proximity_weight,
+    refit,
+    retained_runs,
+)
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import state_from_bytes, state_to_bytes
 
@@ -244,7 +251,7 @@ def test_proximity_weight_follows_the_previous_posterior():
     # Squared Mahalanobis distances computed independently with scipy.spatial.distance, and the
     # 99% radius of a 3-d Gaussian from the chi-square quantile (11.345, the 0.01 point for
     # 3 degrees of freedom in the handbook table, Abramowitz and Stegun 1964, table 26.8;
-    # quoted from memory): weight 1 inside, q / d^2 outside.
+    # quoted from memory): weight 1 inside, (q / d^2)^2 outside.
 
     rng = np.random.default_rng(5)
     mean = np.array([0.5, -1.0, 2.0])
@@ -258,26 +265,29 @@ def test_proximity_weight_follows_the_previous_posterior():
     outside = d2 > q + 1e-3
     assert inside.sum() > 20 and outside.sum() > 20
     np.testing.assert_array_equal(found[inside], 1.0)
-    # 1e-4 relative: the table gives q to five figures.
-    np.testing.assert_allclose(found[outside], q / d2[outside], rtol=1e-4)
+    # 2e-4 relative: the table gives q to five figures, and the weight is its square.
+    np.testing.assert_allclose(found[outside], (q / d2[outside]) ** 2, rtol=2e-4)
 
 
-def test_retained_runs_are_the_newest_and_the_old_ones_inside_the_bulk():
+def test_retained_runs_are_the_newest_and_the_old_ones_not_far_out():
     # 40 runs, half retained by age (20 newest), runs 3 and 7 failed: the fit keeps the
-    # successful newest half and, of the older runs, only those with nearness 1.
+    # successful newest half and, of the older runs, those whose proximity weight shows
+    # them within RETAIN_RADII bulk radii (weight (1 / radii^2)^k at that distance).
     spec = _spec(
         [{"name": "a", "prior": {"kind": "normal", "mean": 0.0, "sd": 1.0}}],
         [{"name": "y", "values": [0.0], "sd": 1.0}],
         design={"initial_runs": 10},
         surrogate={"retain_fraction": 0.5},
     )
+    edge = RETAIN_RADII ** (-2 * PROXIMITY_POWER)
     ok = np.ones(40, dtype=bool)
     ok[[3, 7]] = False
-    nearness = np.full(40, 0.2)
+    nearness = np.full(40, 0.5 * edge)
     nearness[[1, 3, 5, 30]] = 1.0
+    nearness[8] = 2.0 * edge
     kept = retained_runs(spec, ok, nearness)
     newest = np.arange(40)[ok][-19:]  # ceil(0.5 * 38) successful runs
-    np.testing.assert_array_equal(kept, np.concatenate([[1, 5], newest]))
+    np.testing.assert_array_equal(kept, np.concatenate([[1, 5, 8], newest]))
 
 
 @pytest.mark.parametrize("n", [1, 2, 3, 40, 399, 400, 401])

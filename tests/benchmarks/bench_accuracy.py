@@ -13,7 +13,11 @@ and concentrated at delta = 1, 2, 4, 8) it runs
 and writes ``accuracy.md`` (table), ``accuracy.json`` and ``error_vs_runs_<key>.png`` into
 ``--out`` (default ``out/benchmarks/``, git-ignored). Run from the repository root:
 
-    .venv/bin/python tests/benchmarks/bench_accuracy.py [--out out/benchmarks] [--only B3]
+    .venv/bin/python tests/benchmarks/bench_accuracy.py --seeds 3 [--out out/benchmarks]
+
+``--seeds K`` repeats every problem at engine seeds 0..K-1 (the engine's draws and the global
+fit's design; data and references are fixed) and adds a table of medians and ranges;
+``--only B3`` runs the problems whose key starts with that, ``--no-emcee`` skips (c).
 
 About 15 minutes on a 2-core machine (896 s measured). Needs the stored B3 references
 (`make_references.py`).

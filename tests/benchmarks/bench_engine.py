@@ -1,7 +1,8 @@
 """Engine refit benchmark: one round (fit, sample, new batch) at the documented size.
 
-15 parameters, 1000 finished runs of which the newest 500 are retained, outputs of 3 channels
-x 200 values. Prints the median wall time over repeats, the peak traced memory of one refit,
+15 parameters, 1000 finished runs scattered around the posterior (every one retained: the
+newest half by age, the older ones for lying near the posterior), outputs of 3 channels x 200
+values. Prints the median wall time over repeats, the peak traced memory of one refit,
 and how the time scales with runs and output length. Run:
 
     .venv/bin/python tests/benchmarks/bench_engine.py [--repeats 5] [--long] [--blas-threads 1]

@@ -31,7 +31,10 @@ TRUST_FLOOR = 1e-3
 #: surrogate's error is small against the noise: it adds under 4% to the noise variance.
 VALIDATION_TOLERANCE = 0.2
 #: Posterior change (nats) treated as no change, beyond the sampling noise `kl_tolerance` adds.
-KL_FLOOR = 0.02
+#: Between Gaussians of equal sd, KL = delta^2 / 2 for a mean moved by delta sd, so 0.005
+#: allows 0.1 sd between rounds, the accuracy the summaries aim for (0.02 allowed 0.2 sd, and
+#: 2-parameter calibrations cut by a failure boundary stopped with means 0.2 sd off).
+KL_FLOOR = 0.005
 #: Consecutive rounds both tolerances must hold for convergence.
 CONVERGED_ROUNDS = 2
 

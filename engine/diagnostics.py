@@ -6,6 +6,7 @@ from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
+from scipy import stats
 
 __all__ = [
     "TRUST_FLOOR",
@@ -35,6 +36,9 @@ VALIDATION_TOLERANCE = 0.2
 #: allows 0.1 sd between rounds, the accuracy the summaries aim for (0.02 allowed 0.2 sd, and
 #: 2-parameter calibrations cut by a failure boundary stopped with means 0.2 sd off).
 KL_FLOOR = 0.005
+#: Quantile of the sampling noise of the posterior change below which a round counts as
+#: unchanged (`kl_tolerance`).
+NOISE_QUANTILE = 0.95
 #: Consecutive rounds both tolerances must hold for convergence.
 CONVERGED_ROUNDS = 2
 
@@ -110,12 +114,16 @@ def gaussian_kl(m0: np.ndarray, s0: np.ndarray, m1: np.ndarray, s1: np.ndarray) 
 def kl_tolerance(dim: int, ess: float) -> float:
     """Largest posterior change still counted as no change.
 
-    Two Gaussian fits to independent samples of one posterior differ by sampling noise alone:
-    their KL divergence is about ``(d + d(d+1)/2) / (2 ess)`` in expectation (the chi-square
-    limit of the likelihood-ratio statistic, Wilks 1938), so the tolerance is `KL_FLOOR`
-    plus twice that.
+    Two Gaussian fits to independent samples of ``n`` draws from one posterior differ by
+    sampling noise alone: ``n KL`` between them tends to a chi-square variable with
+    ``k = d + d(d+1)/2`` degrees of freedom (the fitted means and covariances; the
+    likelihood-ratio limit of Wilks 1938, with the difference of two fits carrying twice one
+    fit's variance), so its mean is ``k / n``. The tolerance is `KL_FLOOR` plus the 95%
+    quantile of that noise, with the chain's smallest effective sample size for ``n``: a
+    tolerance at the mean was passed by only about half of unchanged rounds.
     """
-    return KL_FLOOR + 2.0 * (dim + dim * (dim + 1) / 2) / (2.0 * max(ess, 1.0))
+    k = dim + dim * (dim + 1) / 2
+    return KL_FLOOR + float(stats.chi2.ppf(NOISE_QUANTILE, k)) / max(ess, 1.0)
 
 
 def marginal_kl(post: np.ndarray, prior_logpdf: np.ndarray, post_edges: np.ndarray) -> float:

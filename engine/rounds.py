@@ -64,7 +64,7 @@ BULK_PROBABILITY = 0.99
 #: run's share of the weighted second moments (``~ d^(2 - 2k)``) vanishes with its distance;
 #: with k = 1 every run far out adds about ``q`` to the frame's spread whatever its distance,
 #: and a few hundred early runs set the frame. Measured on B3 at delta = 8, refitting the
-#: runs of finished calibrations: k = 1.5 and 2 alike; k = 1 (4 seeds) 2.7 times and k = 3
+#: runs of finished calibrations: k = 1.5 and 2 alike; k = 1 (4 seeds) 2.6 times and k = 3
 #: (2 seeds) twice their surrogate error.
 PROXIMITY_POWER = 2
 #: Older runs are retained out to this many bulk radii from the previous posterior.

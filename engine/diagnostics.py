@@ -51,7 +51,12 @@ def trust_from_error(rms_error: float) -> float:
     """
     if not np.isfinite(rms_error):
         return TRUST_FLOOR
-    return float(max(1.0 / (1.0 + (rms_error / TRUST_SCALE) ** 2), TRUST_FLOOR))
+    return float(_trust(np.asarray(rms_error, dtype=float)))
+
+
+def _trust(errors: np.ndarray) -> np.ndarray:
+    """``max(1 / (1 + (e / TRUST_SCALE)^2), TRUST_FLOOR)`` elementwise, for finite errors."""
+    return np.maximum(1.0 / (1.0 + (errors / TRUST_SCALE) ** 2), TRUST_FLOOR)
 
 
 def fit_trust(errors: np.ndarray) -> np.ndarray:
@@ -79,7 +84,7 @@ def fit_trust(errors: np.ndarray) -> np.ndarray:
         return np.ones(errors.shape)
     relative = errors[finite] / max(1.0, float(np.median(errors[finite])))
     out = np.ones(errors.shape)
-    out[finite] = np.maximum(1.0 / (1.0 + (relative / TRUST_SCALE) ** 2), TRUST_FLOOR)
+    out[finite] = _trust(relative)
     return out
 
 

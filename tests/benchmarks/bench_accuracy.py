@@ -64,11 +64,11 @@ from honing.engine.surrogate import Surrogate
 
 #: Reference draws at which the surrogate error is measured (model cost is what limits it).
 ERROR_DRAWS = 2000
-#: Finest accuracy (c) is asked for: three times the Monte Carlo sd of a mean estimated from
-#: 8000 independent reference draws (1 / sqrt(8000) = 0.011 sd), below which the reference
-#: itself cannot tell estimates apart.
-MEAN_FLOOR = 0.035
-SD_FLOOR = 0.035
+#: Finest accuracy (c) is asked for, in Monte Carlo sd of the reference's own mean
+#: (`Reference.mc_error`): below three of them a sampled reference cannot tell estimates apart
+#: (B3: 3 * 0.016 = 0.049 sd, for means and sds alike). Exact references (B1 analytic, B2
+#: quadrature) set no floor: there (c) must reach the accuracy (a) reached.
+FLOOR_MC_ERRORS = 3.0
 #: Walkers and the cap on model evaluations for (c).
 EMCEE_WALKERS = 64
 EMCEE_CAP = 1_000_000
@@ -275,8 +275,9 @@ def bench_problem(problem: Problem, with_emcee: bool = True) -> dict[str, Any]:
         "ratio_b_a": b.sur_err / a.sur_err,
     }
     if with_emcee:
-        mean_target = max(a.mean_err, MEAN_FLOOR)
-        sd_target = max(abs(a.sd_lo - 1.0), abs(a.sd_hi - 1.0), SD_FLOOR)
+        floor = FLOOR_MC_ERRORS * ref.mc_error
+        mean_target = max(a.mean_err, floor)
+        sd_target = max(abs(a.sd_lo - 1.0), abs(a.sd_hi - 1.0), floor)
         c = run_emcee(problem, ref, mean_target, sd_target)
         c["mean_target"], c["sd_target"] = mean_target, sd_target
         out["emcee"] = c

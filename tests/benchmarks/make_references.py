@@ -32,14 +32,22 @@ from scipy import optimize, stats
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from problems import REFERENCES, Problem, b3_elliptic, b3_settings, problem_hash
+from problems import (
+    REFERENCE_BURN_TAU,
+    REFERENCE_WALKERS,
+    REFERENCES,
+    Problem,
+    b3_elliptic,
+    b3_settings,
+    problem_hash,
+)
 
-WALKERS = 64
+WALKERS = REFERENCE_WALKERS
 CHUNK = 2000
 MAX_STEPS = 200_000
 #: Chain length wanted in autocorrelation times: twice emcee's own minimum of 50.
 TAU_MULTIPLE = 100
-BURN_TAU = 5
+BURN_TAU = REFERENCE_BURN_TAU
 KEEP = 8000
 #: Importance-sampling check: draws, t degrees of freedom and scale inflation of the proposal
 #: (heavier tails and 1.5 times the Gauss-Newton covariance keep the weights bounded), and

@@ -20,7 +20,8 @@ fit's design; data and references are fixed) and adds a table of medians and ran
 ``--only B3`` runs the problems whose key starts with that, ``--no-emcee`` skips (c).
 
 With ``--seeds 3``, 12 to 20 minutes on a shared 2-core machine (729 s and 1211 s measured on
-two such machines); one seed takes about a third of that. Needs the stored B3 references (`make_references.py`).
+two such machines); one seed takes about a third of that. Needs the stored B3 references
+(`make_references.py`).
 
 Figures (each against the problem's reference posterior):
 

@@ -492,8 +492,8 @@ def _stored_mc_error(n_draws: int, tau_multiple: float) -> float:
     """Monte Carlo sd, in posterior sd, of the mean of ``n_draws`` stored reference draws.
 
     The chain's effective size is ``walkers * (length - burn) / tau``; the stored draws are a
-    random subset of its thinned draws, which adds the variance of a mean of ``n_draws``
-    (B3: 64 walkers, about 110 tau, 8000 draws: 0.016 sd).
+    random subset of its thinned draws, which adds at most the variance of a mean of
+    ``n_draws`` independent draws (B3: 64 walkers, about 110 tau, 8000 draws: 0.016 sd).
     """
     chain_ess = REFERENCE_WALKERS * (tau_multiple - REFERENCE_BURN_TAU)
     return float(np.sqrt(1.0 / chain_ess + 1.0 / n_draws))

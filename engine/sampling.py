@@ -35,7 +35,11 @@ MIN_TAU_MULTIPLE = 50
 #: Steps discarded at the start of the chain, in autocorrelation times (common practice: a few
 #: tau when walkers start near the target, as they do from the previous round's draws).
 BURN_TAU = 5
-#: Steps per chunk between autocorrelation checks, and the hard cap on the chain.
+#: Fewest steps between autocorrelation checks, and the hard cap on the chain. Each check
+#: costs emcee's `integrated_time` over the whole chain (an FFT per walker and coordinate), so
+#: the chain runs on to the length the latest estimate of tau asks for, at most doubling, and
+#: checks stay few: a 20,000-step chain checked every 200 steps spent three quarters of its
+#: refit in those checks (48 of 62 s, 15 dimensions, 64 walkers).
 CHUNK_STEPS = 200
 MAX_STEPS = 20_000
 #: Largest pool of thinned draws kept per round.
@@ -133,8 +137,9 @@ def sample_posterior(
     state = emcee.State(initial, random_state=np.random.RandomState(seed).get_state())
     warnings: list[str] = []
     tau = np.full(dim, np.inf)
+    chunk = CHUNK_STEPS
     while True:
-        state = sampler.run_mcmc(state, CHUNK_STEPS)
+        state = sampler.run_mcmc(state, chunk)
         steps = sampler.iteration
         chain = sampler.get_chain()
         tau = _tau(chain[steps // 5 :])
@@ -149,6 +154,7 @@ def sample_posterior(
                 f"{ess.min():.0f} (wanted {min_ess})"
             )
             break
+        chunk = _next_chunk(steps, float(tau.max()), walkers, min_ess, max_steps)
     thin = max(1, int(tau.max() / 2))
     draws = sampler.get_chain(discard=burn, thin=thin, flat=True)
     logp = sampler.get_log_prob(discard=burn, thin=thin, flat=True)
@@ -164,6 +170,15 @@ def sample_posterior(
         acceptance=float(np.mean(sampler.acceptance_fraction)),
         warnings=warnings,
     )
+
+
+def _next_chunk(steps: int, tau: float, walkers: int, min_ess: int, max_steps: int) -> int:
+    """Steps to run before the next check: up to the length at which a chain with this tau
+    would pass both tests, at least `CHUNK_STEPS`, at most the current length (short chains
+    underestimate tau) and never past `max_steps`."""
+    wanted = max(MIN_TAU_MULTIPLE * tau, BURN_TAU * tau + min_ess * tau / walkers)
+    chunk = min(max(int(np.ceil(wanted)) - steps, CHUNK_STEPS), max(steps, CHUNK_STEPS))
+    return min(chunk, max_steps - steps)
 
 
 def _tau(chain: np.ndarray) -> np.ndarray:

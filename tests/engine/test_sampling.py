@@ -11,6 +11,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from honing.engine import sampling
 from honing.engine.sampling import (
     Laplace,
     laplace_fit,
@@ -116,3 +117,34 @@ def test_walker_count_rejects_too_few():
             np.zeros((2 * DIM - 2, DIM)),
             np.random.default_rng(0),
         )
+
+
+def test_long_chain_is_checked_at_doubling_lengths(monkeypatch):
+    """A chain whose tau asks for more than `max_steps` is checked at 200, 400, 800, ...
+    steps and stops at the cap with a warning: 6 autocorrelation estimates for 5000 steps,
+    where a check every 200 steps would make 25 (each costs an FFT of the whole chain)."""
+    calls = []
+
+    def slow_tau(chain: np.ndarray) -> np.ndarray:
+        calls.append(chain.shape[0])
+        return np.full(chain.shape[2], 1000.0)
+
+    monkeypatch.setattr(sampling, "_tau", slow_tau)
+    rng = np.random.default_rng(3)
+    walkers = n_walkers(2)
+    result = sample_posterior(
+        _gaussian(np.zeros(2), np.eye(2)), rng.normal(size=(walkers, 2)), rng, max_steps=5000
+    )
+    assert result.n_steps == 5000
+    # _tau sees the chain after its first fifth: 4/5 of 200, 400, 800, 1600, 3200, 5000 steps.
+    assert calls == [160, 320, 640, 1280, 2560, 4000]
+    assert any("stopped at 5000 steps" in w for w in result.warnings)
+
+
+def test_short_chain_runs_to_the_length_its_tau_asks_for():
+    """With tau 10 a chain needs max(50 tau, 5 tau + 1000 tau / 64) = 500 steps: from 200 the
+    next chunk is capped at doubling (200), from 400 it is the missing 100 raised to the
+    200-step minimum; a tau of 1000 near the cap runs only to the cap."""
+    assert sampling._next_chunk(200, 10.0, 64, 1000, 20_000) == 200
+    assert sampling._next_chunk(400, 10.0, 64, 1000, 20_000) == 200
+    assert sampling._next_chunk(19_900, 1000.0, 64, 1000, 20_000) == 100

@@ -42,8 +42,11 @@ BURN_TAU = 5
 #: refit in those checks (48 of 62 s, 15 dimensions, 64 walkers).
 CHUNK_STEPS = 200
 MAX_STEPS = 20_000
-#: Largest pool of thinned draws kept per round.
+#: Largest pool of thinned draws kept per round, and the fewest draws per walker it takes
+#: from a chain stopped at its cap with a tau near the chain's length (thinning by tau / 2
+#: would leave one or two per walker; a converged chain, at least 50 tau long, keeps ~90).
 MAX_POOL = 8000
+MIN_DRAWS_PER_WALKER = 8
 #: Finite-difference steps of the gradient and Hessian at the mode, relative to the local
 #: frame's scale: the surrogate is a low-degree polynomial on that scale, so the truncation
 #: error of central differences is O((h / scale)^2) relative.
@@ -155,7 +158,7 @@ def sample_posterior(
             )
             break
         chunk = _next_chunk(steps, float(tau.max()), walkers, min_ess, max_steps)
-    thin = max(1, int(tau.max() / 2))
+    thin = max(1, min(int(tau.max() / 2), (steps - burn) // MIN_DRAWS_PER_WALKER))
     draws = sampler.get_chain(discard=burn, thin=thin, flat=True)
     logp = sampler.get_log_prob(discard=burn, thin=thin, flat=True)
     if draws.shape[0] > MAX_POOL:
@@ -182,8 +185,15 @@ def _next_chunk(steps: int, tau: float, walkers: int, min_ess: int, max_steps: i
 
 
 def _tau(chain: np.ndarray) -> np.ndarray:
-    """Integrated autocorrelation time per coordinate; tol=0 because the caller checks length."""
-    return np.maximum(emcee.autocorr.integrated_time(chain, tol=0, quiet=True), 1.0)
+    """Integrated autocorrelation time per coordinate; tol=0 because the caller checks length.
+
+    A walker that never moved in the window has an undefined autocorrelation (0 / 0), which
+    makes emcee's walker average NaN: no decorrelation was seen, so such a coordinate gets the
+    window's length, and the chain runs on to its cap with a warning instead of failing.
+    """
+    with np.errstate(invalid="ignore", divide="ignore"):
+        tau = emcee.autocorr.integrated_time(chain, tol=0, quiet=True)
+    return np.maximum(np.where(np.isfinite(tau), tau, float(chain.shape[0])), 1.0)
 
 
 @dataclass

@@ -148,3 +148,35 @@ def test_short_chain_runs_to_the_length_its_tau_asks_for():
     assert sampling._next_chunk(200, 10.0, 64, 1000, 20_000) == 200
     assert sampling._next_chunk(400, 10.0, 64, 1000, 20_000) == 200
     assert sampling._next_chunk(19_900, 1000.0, 64, 1000, 20_000) == 100
+
+
+def test_tau_of_a_walker_that_never_moved_is_the_window_length():
+    """emcee averages each walker's autocorrelation, 0 / 0 for a constant walker: NaN. The
+    sampler must read that as no decorrelation seen (tau = window length), not fail."""
+    rng = np.random.default_rng(5)
+    chain = rng.normal(size=(400, 8, 2))
+    chain[:, 3, 1] = 0.7  # walker 3 stuck in coordinate 1
+    tau = sampling._tau(chain)
+    assert np.isfinite(tau).all()
+    assert tau[1] == 400.0
+    assert tau[0] < 5.0  # independent draws: tau near 1 (emcee's estimator, a few % noise)
+
+
+def test_a_stuck_walker_ends_in_a_warning_not_an_error():
+    """A walker on a narrow spike 50 nats above a flat box never leaves it (every move out is
+    accepted with probability e^-50) and no other walker lands on it: the chain runs to its
+    cap and says so, and the pool keeps at least `MIN_DRAWS_PER_WALKER` draws per walker."""
+
+    def spike_in_box(x: np.ndarray) -> np.ndarray:
+        inside = np.all(np.abs(x) < 1.0, axis=1)
+        spike = np.all(np.abs(x - 0.5) < 1e-9, axis=1)
+        return np.where(inside, np.where(spike, 50.0, 0.0), -np.inf)
+
+    rng = np.random.default_rng(9)
+    walkers = n_walkers(2)
+    start = rng.uniform(-0.9, 0.9, size=(walkers, 2))
+    start[0] = 0.5
+    result = sample_posterior(spike_in_box, start, rng, max_steps=1000)
+    assert result.n_steps == 1000
+    assert any("stopped at 1000 steps" in w for w in result.warnings)
+    assert result.draws.shape[0] >= sampling.MIN_DRAWS_PER_WALKER * walkers

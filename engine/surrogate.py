@@ -183,6 +183,7 @@ def fit_surrogate(
     weights: np.ndarray,
     frame: Frame,
     max_degree: int,
+    scored: np.ndarray | None = None,
 ) -> Surrogate:
     """Fit the reduction and a shared sparse expansion of the components on weighted runs.
 
@@ -197,6 +198,8 @@ def fit_surrogate(
     frame : Frame
     max_degree : int
         Largest total degree tried.
+    scored : ndarray of bool, shape (n_runs,), optional
+        Runs whose leave-one-out errors choose the terms and the degree; all by default.
 
     Returns
     -------
@@ -212,6 +215,7 @@ def fit_surrogate(
         sample_weight=weights,
         q=Q_NORM,
         max_terms=MAX_CANDIDATE_TERMS,
+        scored=scored,
     )
     squared = fit.correction * np.sum(fit.loo_residuals**2, axis=1) + dropped
     return Surrogate(

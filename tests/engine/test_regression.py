@@ -274,9 +274,16 @@ def test_degree_adaptive_stops_after_two_degrees_without_improvement(
     monkeypatch.setattr(regression, "fit_sparse", recording_fit)
     rng = np.random.default_rng(3)
     z = rng.uniform(-1, 1, (80, 2))
-    y = 1.0 + z[:, 0] * z[:, 1]  # exact at degree 2; degrees 3 and 4 can only tie
+    y = 1.0 + z[:, 0] * z[:, 1]  # exact at degree 2; degrees 3 and up can only tie
     basis, _ = fit_degree_adaptive(z, y, ["legendre"] * 2, max_degree=10)
-    assert tried == [3, 6, 10, 15]  # binomial(2 + p, p) candidates for p = 1..4
+    # Every set up to degree 10 has at most 66 terms, under CHEAP_CANDIDATES: all are tried,
+    # binomial(2 + p, p) candidates for p = 1..10, and a tie never displaces the best.
+    assert tried == [3, 6, 10, 15, 21, 28, 36, 45, 55, 66]
+    assert basis.degree == 2
+    tried.clear()
+    monkeypatch.setattr(regression, "CHEAP_CANDIDATES", 0)
+    basis, _ = fit_degree_adaptive(z, y, ["legendre"] * 2, max_degree=10)
+    assert tried == [3, 6, 10, 15]  # patience: degrees 3 and 4 do not improve on 2
     assert basis.degree == 2
 
 

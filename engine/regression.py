@@ -547,13 +547,15 @@ class SharedFit:
         Sorted selected columns; always contains 0, the constant.
     coef : ndarray, shape (n_active, n_targets)
     loo_error : ndarray, shape (n_targets,)
-        Corrected relative leave-one-out error of each target.
+        Corrected relative leave-one-out error of each target, over the scored samples
+        (all by default) and relative to their weighted variance.
     loo_error_total : float
         The same for all targets together: summed squared leave-one-out residuals over
         summed weighted variances, the quantity the selection minimises.
     loo_residuals : ndarray, shape (n_samples, n_targets)
         Leave-one-out residuals of each sample and target, in the units of ``y`` (``inf``
-        where a sample has leverage 1 or zero weight).
+        where a sample has leverage 1 or zero weight; with scoring, an unscored sample of
+        leverage 1 may be in the selected fit).
     correction : float
         The factor ``T(P, N)`` of the selected set.
     """
@@ -595,7 +597,8 @@ def fit_shared_sparse(
         sample of tiny weight still has leverage near 1 in a high-degree basis, and its
         deleted residual, an extrapolation far outside the region of interest, would
         otherwise outweigh every other sample and hold the fit at a low degree. Fewer than
-        three scored samples of positive weight score all.
+        three scored samples of positive weight, or scored samples on which every target is
+        constant, score all.
 
     Returns
     -------
@@ -623,13 +626,15 @@ def fit_shared_sparse(
     a = phi * root[:, None]
     c = y * root[:, None]
     mean = (weights @ y) / weight_total
-    squares = ((y - mean) * root[:, None]) ** 2
-    if float(squares.sum()) == 0.0:
+    score = _scored_rows(scored, positive)
+    if float(np.sum(((y - mean) * root[:, None]) ** 2)) == 0.0:
         coef = (mean / phi[positive, 0][0])[None, :]
         zeros = np.zeros(y.shape[1])
         return SharedFit(np.array([0]), coef, zeros, 0.0, np.zeros_like(y), 1.0)
-    score = _scored_rows(scored, positive, squares)
-    spread = np.sum(squares[score], axis=0)
+    spread = _weighted_spread(y, weights, score)
+    if float(spread.sum()) == 0.0:  # constant where scored: score every row
+        score = positive
+        spread = _weighted_spread(y, weights, score)
     spread_total = float(spread.sum())
     n_cols = a.shape[1]
     limit = min(n_samples - 3, n_cols - 1)
@@ -699,21 +704,26 @@ def fit_shared_sparse(
     )
 
 
-def _scored_rows(
-    scored: np.ndarray | None, positive: np.ndarray, squares: np.ndarray
-) -> np.ndarray:
+def _scored_rows(scored: np.ndarray | None, positive: np.ndarray) -> np.ndarray:
     """Rows that enter the leave-one-out error: the scored ones of positive weight, or every
-    row of positive weight when that leaves fewer than three or no spread to score against
-    (``squares``: weighted squared deviations of the targets, per row)."""
+    row of positive weight when that leaves fewer than three."""
     if scored is None:
         return positive
-    scored = np.asarray(scored, dtype=bool)
-    if scored.shape != positive.shape:
-        raise ValueError(f"scored must have shape {positive.shape}, got {scored.shape}")
+    scored = np.asarray(scored)
+    if scored.dtype != bool or scored.shape != positive.shape:
+        raise ValueError(
+            f"scored must be a boolean array of shape {positive.shape}, got {scored.dtype} "
+            f"of shape {scored.shape}"
+        )
     chosen = scored & positive
-    if np.count_nonzero(chosen) < 3 or float(squares[chosen].sum()) == 0.0:
-        return positive
-    return chosen
+    return chosen if np.count_nonzero(chosen) >= 3 else positive
+
+
+def _weighted_spread(y: np.ndarray, weights: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """Weighted sum of squares of each target about its weighted mean over ``rows``."""
+    w = weights[rows]
+    centred = y[rows] - (w @ y[rows]) / w.sum()
+    return w @ centred**2
 
 
 def _next_column(correlation: np.ndarray, orth_norm2: np.ndarray, available: np.ndarray) -> int:

@@ -41,13 +41,7 @@ from honing.engine.diagnostics import (
 from honing.engine.failures import FailureModel
 from honing.engine.likelihood import log_likelihood, noise_scale_draws, whiten
 from honing.engine.priors import reference_logpdf
-from honing.engine.sampling import (
-    ChainResult,
-    Laplace,
-    laplace_fit,
-    n_walkers,
-    sample_posterior,
-)
+from honing.engine.sampling import Laplace, laplace_fit, n_walkers, sample_posterior
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import EngineState, RunTable
 from honing.engine.surrogate import Frame, Surrogate, fit_surrogate
@@ -84,10 +78,6 @@ RETAIN_RADII = 100.0
 #: 8 terms of degree 8 (0.0008). Refitting 4 finished B3 delta = 8 calibrations, the terms
 #: were unchanged on 3 and the error 4% lower on the fourth.
 SCORED_RADII = 3.0
-#: Effective sample size of the pool a calibration ends with (converged or out of budget):
-#: Monte Carlo error of its means about 1/sqrt(4000) = 0.016 posterior sd, half that of the
-#: rounds before (`honing.engine.sampling.MIN_ESS`), for sampler time only.
-FINAL_ESS = 4000
 #: Prior draws behind the round-0 summary.
 PRIOR_DRAWS = 4000
 #: Posterior draws pushed through the surrogate for the predictive bands.
@@ -309,6 +299,12 @@ def refit(
     initial, laplace = _initial_walkers(spec, state, xi_all[kept], surrogate.frame, log_post, rng)
     chain = sample_posterior(log_post, initial, rng, proposal=laplace)
     pool_xi = chain.draws
+    theta = _to_physical(spec, pool_xi)
+    misfit = surrogate.misfit(pool_xi)
+    columns = [theta]
+    if spec.noise_scale == "estimate":
+        columns.append(noise_scale_draws(misfit, spec.output_size, rng)[:, None])
+    pool = np.hstack(columns)
 
     mean, cov = pool_xi.mean(axis=0), _cov(pool_xi)
     change = None
@@ -324,9 +320,13 @@ def refit(
         "surrogate_degree": surrogate.degree,
         "surrogate_components": surrogate.reduction.n_components,
         "model_error": model_error,
-        **_chain_diagnostics(chain),
+        "ess_min": ess_min,
+        "tau_max": float(chain.tau.max()),
+        "chain_steps": chain.n_steps,
+        "acceptance": chain.acceptance,
         "failed_fraction": float(runs.failed.mean()),
         "runs_retained": int(kept.size),
+        "runs_scored": int(np.count_nonzero(scored)),
         "converged": False,
         "warnings": list(chain.warnings),
     }
@@ -346,18 +346,6 @@ def refit(
         status = "converged"
     elif finished >= spec.max_runs:
         status = "budget_exhausted"
-    if status != "collecting":
-        chain = _final_chain(log_post, chain, laplace, rng)
-        pool_xi = chain.draws
-        mean, cov = pool_xi.mean(axis=0), _cov(pool_xi)
-        diagnostics.update(_chain_diagnostics(chain))
-        diagnostics["warnings"].extend(chain.warnings)
-    theta = _to_physical(spec, pool_xi)
-    misfit = surrogate.misfit(pool_xi)
-    columns = [theta]
-    if spec.noise_scale == "estimate":
-        columns.append(noise_scale_draws(misfit, spec.output_size, rng)[:, None])
-    pool = np.hstack(columns)
 
     prior_predictive = state.summary.get("prior_predictive")
     if prior_predictive is None:
@@ -391,26 +379,6 @@ def refit(
         surrogate={**meta, "failures": failures.to_dict() if failures else None},
         arrays={**arrays, "post_mean": mean, "post_cov": cov},
     )
-
-
-def _final_chain(
-    log_post: Any, chain: ChainResult, laplace: Laplace | None, rng: np.random.Generator
-) -> ChainResult:
-    """A longer chain for the last round's pool (`FINAL_ESS`), started from the round's
-    draws: the summaries a calibration ends with carry half the Monte Carlo error of the
-    rounds before, at the cost of sampler time alone."""
-    walkers = n_walkers(chain.draws.shape[1])
-    initial = chain.draws[rng.choice(chain.draws.shape[0], walkers, replace=False)]
-    return sample_posterior(log_post, initial, rng, proposal=laplace, min_ess=FINAL_ESS)
-
-
-def _chain_diagnostics(chain: ChainResult) -> dict[str, Any]:
-    return {
-        "ess_min": float(chain.ess.min()),
-        "tau_max": float(chain.tau.max()),
-        "chain_steps": chain.n_steps,
-        "acceptance": chain.acceptance,
-    }
 
 
 def _to_reference(spec: CalibrationSpec, theta: np.ndarray) -> np.ndarray:

@@ -112,8 +112,9 @@ class Surrogate:
         Corrected leave-one-out relative error of each component's fit.
     loo_rms : ndarray, shape (n_runs,)
         Per fitted run, the rms over all outputs of its leave-one-out prediction error in
-        noise units (components times the correction factor, plus what the reduction drops).
-        Not serialised: it describes the fit's own runs.
+        noise units (components times the correction factor, plus what the reduction drops);
+        ``inf`` for a run of leverage 1 (possible for a far, unscored run). Not serialised:
+        it describes the fit's own runs.
     """
 
     frame: Frame

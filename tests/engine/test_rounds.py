@@ -10,7 +10,6 @@ from honing.engine.diagnostics import gaussian_kl
 from honing.engine.errors import ConflictError
 from honing.engine.loop import CalibrationLoop
 from honing.engine.rounds import (
-    FINAL_ESS,
     PROXIMITY_POWER,
     RETAIN_RADII,
     _sorted_quantile,
@@ -18,7 +17,6 @@ from honing.engine.rounds import (
     refit,
     retained_runs,
 )
-from honing.engine.sampling import MIN_ESS
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import state_from_bytes, state_to_bytes
 
@@ -247,21 +245,6 @@ def test_budget_is_never_exceeded_and_reported():
     assert loop.status in ("converged", "budget_exhausted")
     if loop.status == "budget_exhausted":
         assert len(loop.finished) == spec.max_runs
-
-
-def test_the_last_round_samples_a_larger_pool():
-    # The pool a calibration ends with is sampled to FINAL_ESS, the rounds before to MIN_ESS
-    # (emcee's integrated autocorrelation time gives the effective size).
-    spec, sim = _small_loop()
-    loop = CalibrationLoop(spec)
-    sizes = []
-    while loop.status == "collecting":
-        for p in loop.ask(5):
-            loop.tell(p.point_id, outputs=sim(spec.parameters_dict(p.theta)))
-        sizes.append(loop.state.summary["diagnostics"].get("ess_min"))
-    assert loop.status in ("converged", "budget_exhausted")
-    assert sizes[-1] >= FINAL_ESS
-    assert all(s is None or s >= MIN_ESS for s in sizes)
 
 
 def test_proximity_weight_follows_the_previous_posterior():

@@ -1,8 +1,15 @@
+from types import SimpleNamespace
+
 import numpy as np
 import pytest
 
 from honing.engine.bases import PolynomialBasis, total_degree_indices
-from honing.engine.regression import fit_degree_adaptive_shared, fit_shared_sparse, loo_residuals
+from honing.engine.regression import (
+    _degree_search,
+    fit_degree_adaptive_shared,
+    fit_shared_sparse,
+    loo_residuals,
+)
 
 
 @pytest.mark.parametrize("seed", range(6))
@@ -69,13 +76,13 @@ def test_scored_error_matches_brute_force_over_the_scored_rows():
     fit = fit_shared_sparse(phi, y, w, scored)
     np.testing.assert_array_equal(fit.columns, np.arange(5))
     # Reference: leave-one-out by numpy.linalg.lstsq on the row-scaled system, summed over the
-    # scored rows only, over their weighted spread about the mean of all rows; times the same
-    # correction T(P, N) as without scoring (every row of positive weight is fitted).
+    # scored rows only, over their weighted spread about their own weighted mean; times the
+    # same correction T(P, N) as without scoring (every row of positive weight is fitted).
     root = np.sqrt(w)
     n, p = phi.shape
     c_mat = (phi * root[:, None]).T @ (phi * root[:, None]) / w.sum()
     factor = n / (n - p) * (1 + np.trace(np.linalg.inv(c_mat)) / n)
-    mean = w @ y / w.sum()
+    mean = w[scored] @ y[scored] / w[scored].sum()
     for j in range(2):
         deleted = []
         for i in np.flatnonzero(scored):
@@ -133,25 +140,43 @@ def test_too_few_scored_rows_score_every_row():
     assert a.loo_error_total == b.loo_error_total
 
 
-def test_scored_of_the_wrong_shape_is_refused():
+def test_scored_rows_where_the_targets_are_constant_score_every_row():
+    z, y, w, _ = _far_tethered_sample()
+    phi = PolynomialBasis(total_degree_indices(1, 4), ["hermite"]).design_matrix(z)
+    flat = y.copy()
+    flat[:5] = 1.0
+    first_five = np.zeros(20, bool)
+    first_five[:5] = True
+    a = fit_shared_sparse(phi, flat, w, first_five)
+    b = fit_shared_sparse(phi, flat, w)
+    np.testing.assert_array_equal(a.columns, b.columns)
+    assert a.loo_error_total == b.loo_error_total
+
+
+@pytest.mark.parametrize(
+    ("scored", "flat"),
+    [
+        (np.ones(5, bool), False),
+        (np.ones(5, bool), True),  # checked before the constant-target shortcut
+        (np.ones(20), False),  # weights are not a mask
+    ],
+)
+def test_a_bad_scored_mask_is_refused(scored, flat):
     z, y, w, _ = _far_tethered_sample()
     phi = PolynomialBasis(total_degree_indices(1, 3), ["hermite"]).design_matrix(z)
-    with pytest.raises(ValueError, match="scored must have shape"):
-        fit_shared_sparse(phi, y, w, np.ones(5, bool))
+    with pytest.raises(ValueError, match="scored must be a boolean array of shape"):
+        fit_shared_sparse(phi, np.ones_like(y) if flat else y, w, scored)
 
 
 def _scripted_search(dim, errors):
     """`_degree_search` with a fit whose error by degree is scripted: the degree it keeps."""
-    from types import SimpleNamespace
-
-    from honing.engine.regression import _degree_search
+    sizes = [len(total_degree_indices(dim, d, 0.75)) for d in range(1, len(errors) + 1)]
 
     def fit(phi):
         degree = sizes.index(phi.shape[1]) + 1
         return SimpleNamespace(loo_error_total=errors[degree - 1])
 
     z = np.zeros((1000, dim))
-    sizes = [len(total_degree_indices(dim, d, 0.75)) for d in range(1, len(errors) + 1)]
     weights = np.ones(z.shape[0])
     basis, _ = _degree_search(z, ["hermite"] * dim, len(errors), weights, 0.75, 4000, fit)
     return basis.degree

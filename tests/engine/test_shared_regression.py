@@ -129,26 +129,22 @@ def test_far_rows_fitted_but_not_scored_leave_the_degree_to_the_bulk():
     assert plain_error > 100 * scored_error
 
 
-def test_too_few_scored_rows_score_every_row():
+@pytest.mark.parametrize(
+    ("n_scored", "constant_there"),
+    [
+        (2, False),  # fewer than three scored rows
+        (5, True),  # the targets are constant on the scored rows: nothing to score against
+    ],
+)
+def test_scored_rows_that_cannot_score_fall_back_to_every_row(n_scored, constant_there):
     z, y, w, _ = _far_tethered_sample()
     phi = PolynomialBasis(total_degree_indices(1, 4), ["hermite"]).design_matrix(z)
-    two = np.zeros(20, bool)
-    two[:2] = True
-    a = fit_shared_sparse(phi, y, w, two)
+    y = y.copy()
+    if constant_there:
+        y[:n_scored] = 1.0
+    scored = np.arange(20) < n_scored
+    a = fit_shared_sparse(phi, y, w, scored)
     b = fit_shared_sparse(phi, y, w)
-    np.testing.assert_array_equal(a.columns, b.columns)
-    assert a.loo_error_total == b.loo_error_total
-
-
-def test_scored_rows_where_the_targets_are_constant_score_every_row():
-    z, y, w, _ = _far_tethered_sample()
-    phi = PolynomialBasis(total_degree_indices(1, 4), ["hermite"]).design_matrix(z)
-    flat = y.copy()
-    flat[:5] = 1.0
-    first_five = np.zeros(20, bool)
-    first_five[:5] = True
-    a = fit_shared_sparse(phi, flat, w, first_five)
-    b = fit_shared_sparse(phi, flat, w)
     np.testing.assert_array_equal(a.columns, b.columns)
     assert a.loo_error_total == b.loo_error_total
 

@@ -84,7 +84,7 @@ PATH_PATIENCE_FRACTION = 1.0
 DEGREE_PATIENCE = 2
 #: Candidate sets of at most this many terms are always fitted: they cost little, and the
 #: error need not fall with every degree (on B2 at weak noise, seed 2, degrees 5 to 7 added
-#: nothing to the 5 terms of degree 4 and degree 8 cut the error 45-fold).
+#: nothing to the 5 terms of degree 4 and degree 8 cut the error by a factor of 46).
 CHEAP_CANDIDATES = 100
 #: Candidate bases with more than this many columns per sample of positive weight are not
 #: tried: it bounds the cost of the path and how far the selection may be underdetermined.

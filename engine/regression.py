@@ -510,9 +510,10 @@ def _degree_search(
 ) -> tuple[PolynomialBasis, _Fit]:
     """Fit candidate bases of degree 1, 2, ... and keep the one of smallest error.
 
-    Stops at the first degree whose candidate set exceeds the size limit, or after
-    `DEGREE_PATIENCE` degrees without a new best once a set has more than `CHEAP_CANDIDATES`
-    terms.
+    Stops at the first degree whose candidate set exceeds the size limit, or after a fitted
+    set of more than `CHEAP_CANDIDATES` terms when `DEGREE_PATIENCE` or more degrees in a row
+    (cheap ones included) have not improved on the best: the first set past the cheap size
+    is always fitted.
     """
     limit = min(max_terms, CANDIDATES_PER_SAMPLE * int(np.count_nonzero(weights > 0.0)))
     best: tuple[PolynomialBasis, _Fit] | None = None
@@ -720,10 +721,13 @@ def _scored_rows(scored: np.ndarray | None, positive: np.ndarray) -> np.ndarray:
 
 
 def _weighted_spread(y: np.ndarray, weights: np.ndarray, rows: np.ndarray) -> np.ndarray:
-    """Weighted sum of squares of each target about its weighted mean over ``rows``."""
+    """Weighted sum of squares of each target about its weighted mean over ``rows``; exactly 0
+    for a target constant on them (rounding in the weighted mean would leave ~1e-33)."""
     w = weights[rows]
     centred = y[rows] - (w @ y[rows]) / w.sum()
-    return w @ centred**2
+    spread = w @ centred**2
+    spread[np.ptp(y[rows], axis=0) == 0.0] = 0.0
+    return spread
 
 
 def _next_column(correlation: np.ndarray, orth_norm2: np.ndarray, available: np.ndarray) -> int:

@@ -29,8 +29,8 @@ LogProb = Callable[[np.ndarray], np.ndarray]
 #: Effective sample size wanted per coordinate: Monte Carlo error of a mean under 1/sqrt(1000)
 #: ~ 0.032 posterior sd, inside the 0.05 sd the summaries promise. With 64 walkers or more the
 #: 50-tau rule asks for more than this already; the pool keeps less than the chain holds (a
-#: 2-d standard normal, 150 chains: estimated ESS 5,000, and the 8,000 pooled draws' means
-#: scattered as for 3,300 independent draws).
+#: 2-d standard normal, 150 chains with the Laplace proposal: estimated ESS 5,000, and the
+#: 8,000 pooled draws' means scattered as for 3,300 independent draws).
 MIN_ESS = 1000
 #: Chain length in autocorrelation times below which emcee's own estimate is unreliable
 #: (Foreman-Mackey et al. 2013; emcee's `integrated_time` uses the same 50).

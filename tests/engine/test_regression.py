@@ -262,7 +262,7 @@ def test_degree_adaptive_finds_a_planted_polynomial() -> None:
     assert_allclose(basis.design_matrix(z) @ fit.coef, y, atol=tolerance)
 
 
-def test_degree_adaptive_stops_after_two_degrees_without_improvement(
+def test_degree_patience_applies_once_candidate_sets_are_large(
     monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     tried: list[int] = []

@@ -12,7 +12,9 @@ from honing.engine.loop import CalibrationLoop
 from honing.engine.rounds import (
     PROXIMITY_POWER,
     RETAIN_RADII,
+    SCORED_RADII,
     _sorted_quantile,
+    _to_reference,
     proximity_weight,
     refit,
     retained_runs,
@@ -245,6 +247,30 @@ def test_budget_is_never_exceeded_and_reported():
     assert loop.status in ("converged", "budget_exhausted")
     if loop.status == "budget_exhausted":
         assert len(loop.finished) == spec.max_runs
+
+
+def test_runs_scored_are_the_retained_runs_within_three_radii():
+    # Recomputed from the previous round's posterior fit with the public weight and retention
+    # rules: a run d bulk radii out has weight d^-4, so within 3 radii means >= 3^-4.
+    spec, sim = _small_loop()
+    loop = CalibrationLoop(spec)
+    checked = 0
+    while loop.status == "collecting":
+        previous = loop.state
+        for p in loop.ask(5):
+            loop.tell(p.point_id, outputs=sim(spec.parameters_dict(p.theta)))
+        if loop.state.round == previous.round or "post_mean" not in previous.arrays:
+            continue
+        runs = loop.runs()
+        xi = _to_reference(spec, runs.theta)
+        near = proximity_weight(previous.arrays["post_mean"], previous.arrays["post_cov"], xi)
+        kept = retained_runs(spec, ~runs.failed, near)
+        diagnostics = loop.state.summary["diagnostics"]
+        expected = int(np.count_nonzero(near[kept] >= SCORED_RADII ** (-2 * PROXIMITY_POWER)))
+        assert diagnostics["runs_retained"] == kept.size
+        assert diagnostics["runs_scored"] == expected
+        checked += expected < kept.size  # rounds where some retained runs are not scored
+    assert checked >= 1
 
 
 def test_proximity_weight_follows_the_previous_posterior():

@@ -130,18 +130,25 @@ def test_far_rows_fitted_but_not_scored_leave_the_degree_to_the_bulk():
 
 
 @pytest.mark.parametrize(
-    ("n_scored", "constant_there"),
+    ("n_scored", "constant_there", "zero_weight_third"),
     [
-        (2, False),  # fewer than three scored rows
-        (5, True),  # the targets are constant on the scored rows: nothing to score against
+        (2, False, False),  # fewer than three scored rows
+        (3, False, True),  # three scored, but one has zero weight
+        (5, True, False),  # the targets are constant on the scored rows: nothing to score against
     ],
 )
-def test_scored_rows_that_cannot_score_fall_back_to_every_row(n_scored, constant_there):
+def test_scored_rows_that_cannot_score_fall_back_to_every_row(
+    n_scored, constant_there, zero_weight_third
+):
     z, y, w, _ = _far_tethered_sample()
+    # Uneven weights: the weighted mean of a constant then differs from it by rounding.
+    w = w * np.random.default_rng(8).uniform(0.1, 1.0, w.size)
+    if zero_weight_third:
+        w[2] = 0.0
     phi = PolynomialBasis(total_degree_indices(1, 4), ["hermite"]).design_matrix(z)
     y = y.copy()
     if constant_there:
-        y[:n_scored] = 1.0
+        y[:n_scored] = 0.1
     scored = np.arange(20) < n_scored
     a = fit_shared_sparse(phi, y, w, scored)
     b = fit_shared_sparse(phi, y, w)

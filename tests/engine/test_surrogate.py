@@ -91,3 +91,18 @@ def test_quadratic_is_fitted_exactly_in_a_correlated_frame_and_survives_the_payl
     restored = Surrogate.from_payload(meta, arrays)
     np.testing.assert_array_equal(restored.residuals(test), surrogate.residuals(test))
     assert isinstance(restored.reduction, OutputReduction)
+
+
+def test_scored_runs_choose_the_degree_of_the_surrogate():
+    # One run 12 sd out at weight 4e-4 beside 19 in the bulk (as in test_shared_regression):
+    # scored everywhere its extrapolation holds the fit at a low degree; scored on the bulk,
+    # the fit follows the smooth curve to a high degree. Identity frame, so the local
+    # coordinates are the runs' own.
+    xi = np.r_[np.linspace(-2.5, 2.5, 19), -12.0][:, None]
+    outputs = np.exp(0.6 * xi) + 0.4 * np.sin(1.5 * xi)
+    weights = np.r_[np.ones(19), 4e-4]
+    frame = Frame(np.zeros(1), np.ones(1), ("hermite",))
+    bulk = np.r_[np.ones(19, bool), False]
+    scored = fit_surrogate(xi, outputs, weights, frame, max_degree=10, scored=bulk)
+    plain = fit_surrogate(xi, outputs, weights, frame, max_degree=10)
+    assert scored.degree >= 6 > plain.degree

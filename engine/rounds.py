@@ -151,7 +151,13 @@ def retained_runs(spec: CalibrationSpec, ok: np.ndarray, nearness: np.ndarray) -
     keep = max(retained_floor(spec), int(np.ceil(spec.retain_fraction * order.size)))
     newest = np.zeros(ok.shape, dtype=bool)
     newest[order[-keep:]] = True
-    return np.flatnonzero(newest | (ok & (nearness >= RETAIN_RADII ** (-2 * PROXIMITY_POWER))))
+    return np.flatnonzero(newest | (ok & _within_radii(nearness, RETAIN_RADII)))
+
+
+def _within_radii(nearness: np.ndarray, radii: float) -> np.ndarray:
+    """Whether runs lie within ``radii`` bulk radii of the previous posterior, from their
+    `proximity_weight`: ``(q / d^2)^k`` is ``radii^(-2k)`` at ``d^2 = radii^2 q``."""
+    return nearness >= radii ** (-2 * PROXIMITY_POWER)
 
 
 def retained_floor(spec: CalibrationSpec) -> int:
@@ -289,7 +295,7 @@ def refit(
     frame = Frame.local(xi_all[kept], weights, decorrelate=focused)
     validation = _validation_error(state, runs)
 
-    scored = nearness[kept] >= SCORED_RADII ** (-2 * PROXIMITY_POWER)
+    scored = _within_radii(nearness[kept], SCORED_RADII)
     surrogate = fit_surrogate(xi_all[kept], residuals, weights, frame, spec.max_degree, scored)
     model_error = _model_error(surrogate, kept >= state.runs_at_fit)
     if not widen:

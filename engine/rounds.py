@@ -41,7 +41,13 @@ from honing.engine.diagnostics import (
 from honing.engine.failures import FailureModel
 from honing.engine.likelihood import log_likelihood, noise_scale_draws, whiten
 from honing.engine.priors import reference_logpdf
-from honing.engine.sampling import Laplace, laplace_fit, n_walkers, sample_posterior
+from honing.engine.sampling import (
+    ChainResult,
+    Laplace,
+    laplace_fit,
+    n_walkers,
+    sample_posterior,
+)
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import EngineState, RunTable
 from honing.engine.surrogate import Frame, Surrogate, fit_surrogate
@@ -79,6 +85,24 @@ RETAIN_RADII = 100.0
 #: calibrations changed nothing; over whole calibrations, where it also acts on the early
 #: rounds, the error at the stop went from 0.0043-0.0146 to 0.0040-0.0085 (12 seeds).
 SCORED_RADII = 3.0
+#: Effective sample size of the chain whose draws a calibration serves once it stops
+#: (converged or out of budget), and the most draws kept from it. Rounds that go on only
+#: steer the next batch and need less (`honing.engine.sampling.MIN_ESS`); what is served last
+#: should have Monte Carlo errors well below its surrogate's: about 0.01 posterior sd on a
+#: mean, and stable 95% interval limits (an effective size of 10,000 is the usual advice for
+#: those; Kruschke, Doing Bayesian Data Analysis, 2nd ed., 2015, ch. 7, quoted from memory).
+#: Thinned by half an autocorrelation time, 20,000 draws hold about that effective size.
+FINAL_ESS = 10_000
+FINAL_POOL = 20_000
+#: Longest chain of a round, before it is known whether the round stops the calibration: its
+#: draws steer the next batch and feed the convergence test, which also needs the surrogate
+#: validated on new runs, so a chain cut short while the surrogate is still poor cannot stop
+#: the calibration early. Early rounds on B3 at delta = 8 ran 8,000-20,000 steps (tau
+#: 160-650, acceptance 0.06-0.10) at 25-47 s each; capped at 4,000, whole calibrations took
+#: 68-99 s instead of 92-173 s, and their surrogate errors at the stop were 0.0048-0.0100
+#: (median 0.0071) against 0.0059-0.0120 (median 0.0093) over 6 seeds. The chain served
+#: once the calibration stops runs to `honing.engine.sampling.MAX_STEPS`.
+STEERING_STEPS = 4000
 #: Prior draws behind the round-0 summary.
 PRIOR_DRAWS = 4000
 #: Posterior draws pushed through the surrogate for the predictive bands.
@@ -304,7 +328,34 @@ def refit(
     log_post = _log_posterior(spec, surrogate, families, model_error, failures)
 
     initial, laplace = _initial_walkers(spec, state, xi_all[kept], surrogate.frame, log_post, rng)
-    chain = sample_posterior(log_post, initial, rng, proposal=laplace)
+    chain = sample_posterior(log_post, initial, rng, proposal=laplace, max_steps=STEERING_STEPS)
+    mean, cov = chain.draws.mean(axis=0), _cov(chain.draws)
+    change = None
+    if "post_mean" in state.arrays:
+        change = gaussian_kl(mean, cov, state.arrays["post_mean"], state.arrays["post_cov"])
+    entry = {
+        "round": state.round + 1,
+        "runs_completed": int(ok.sum()),
+        "runs_failed": int(runs.failed.sum()),
+        "validation_error": validation,
+        "posterior_change": change,
+        "trust_mean": float(np.mean(runs.trust[kept])),
+        "surrogate_terms": surrogate.n_terms,
+        "kl_tolerance": kl_tolerance(spec.dim, float(chain.ess.min())),
+    }
+    history = [*state.history, entry]
+    is_converged = converged(history)
+    status = "collecting"
+    if is_converged:
+        status = "converged"
+    elif runs.n_runs >= spec.max_runs:
+        status = "budget_exhausted"
+    warnings = list(chain.warnings)
+    if status != "collecting":
+        chain = _final_chain(log_post, chain.draws, rng, laplace)
+        mean, cov = chain.draws.mean(axis=0), _cov(chain.draws)
+        warnings.extend(chain.warnings)
+
     pool_xi = chain.draws
     theta = _to_physical(spec, pool_xi)
     misfit = surrogate.misfit(pool_xi)
@@ -312,47 +363,24 @@ def refit(
     if spec.noise_scale == "estimate":
         columns.append(noise_scale_draws(misfit, spec.output_size, rng)[:, None])
     pool = np.hstack(columns)
-
-    mean, cov = pool_xi.mean(axis=0), _cov(pool_xi)
-    change = None
-    if "post_mean" in state.arrays:
-        change = gaussian_kl(mean, cov, state.arrays["post_mean"], state.arrays["post_cov"])
-    ess_min = float(chain.ess.min())
-    finished = runs.n_runs
     diagnostics = {
-        "trust_mean": float(np.mean(runs.trust[kept])),
+        "trust_mean": entry["trust_mean"],
         "validation_error": validation,
         "posterior_change": change,
         "surrogate_terms": surrogate.n_terms,
         "surrogate_degree": surrogate.degree,
         "surrogate_components": surrogate.reduction.n_components,
         "model_error": model_error,
-        "ess_min": ess_min,
+        "ess_min": float(chain.ess.min()),
         "tau_max": float(chain.tau.max()),
         "chain_steps": chain.n_steps,
         "acceptance": chain.acceptance,
         "failed_fraction": float(runs.failed.mean()),
         "runs_retained": int(kept.size),
         "runs_scored": int(np.count_nonzero(scored)),
-        "converged": False,
-        "warnings": list(chain.warnings),
+        "converged": is_converged,
+        "warnings": warnings,
     }
-    entry = {
-        "round": state.round + 1,
-        "runs_completed": int(ok.sum()),
-        "runs_failed": int(runs.failed.sum()),
-        **{k: diagnostics[k] for k in ("validation_error", "posterior_change", "trust_mean")},
-        "surrogate_terms": surrogate.n_terms,
-        "kl_tolerance": kl_tolerance(spec.dim, ess_min),
-    }
-    history = [*state.history, entry]
-    is_converged = converged(history)
-    diagnostics["converged"] = is_converged
-    status = "collecting"
-    if is_converged:
-        status = "converged"
-    elif finished >= spec.max_runs:
-        status = "budget_exhausted"
 
     prior_predictive = state.summary.get("prior_predictive")
     if prior_predictive is None:
@@ -376,7 +404,7 @@ def refit(
     return EngineState(
         round=state.round + 1,
         status=status,
-        runs_at_fit=finished,
+        runs_at_fit=runs.n_runs,
         proposals=_to_physical(spec, batch_xi),
         predictions=surrogate.residuals(batch_xi).astype(np.float32),
         pool=pool,
@@ -541,6 +569,18 @@ def _initial_walkers(
     p /= p.sum()
     idx = rng.choice(candidates.shape[0], walkers, replace=False, p=p)
     return candidates[idx], None
+
+
+def _final_chain(
+    log_post: Any, draws: np.ndarray, rng: np.random.Generator, laplace: Laplace | None
+) -> ChainResult:
+    """The posterior the calibration serves once it stops: a chain run to `FINAL_ESS`,
+    started from the round's own draws, which are already in the posterior's bulk."""
+    walkers = n_walkers(draws.shape[1])
+    initial = draws[rng.choice(draws.shape[0], walkers, replace=draws.shape[0] < walkers)]
+    return sample_posterior(
+        log_post, initial, rng, proposal=laplace, min_ess=FINAL_ESS, max_pool=FINAL_POOL
+    )
 
 
 def _parameter_summaries(

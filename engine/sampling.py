@@ -96,6 +96,7 @@ def sample_posterior(
     proposal: Laplace | None = None,
     min_ess: int = MIN_ESS,
     max_steps: int = MAX_STEPS,
+    max_pool: int = MAX_POOL,
 ) -> ChainResult:
     """Run emcee until the chain is long enough, then thin it to nearly independent draws.
 
@@ -113,6 +114,8 @@ def sample_posterior(
         autocorrelation time to a few steps.
     min_ess : int
     max_steps : int
+    max_pool : int
+        Most thinned draws returned; a longer thinned chain is subsampled at random.
 
     Returns
     -------
@@ -164,8 +167,8 @@ def sample_posterior(
     thin = max(1, min(int(tau.max() / 2), (steps - burn) // MIN_DRAWS_PER_WALKER))
     draws = sampler.get_chain(discard=burn, thin=thin, flat=True)
     logp = sampler.get_log_prob(discard=burn, thin=thin, flat=True)
-    if draws.shape[0] > MAX_POOL:
-        keep = np.sort(rng.choice(draws.shape[0], MAX_POOL, replace=False))
+    if draws.shape[0] > max_pool:
+        keep = np.sort(rng.choice(draws.shape[0], max_pool, replace=False))
         draws, logp = draws[keep], logp[keep]
     return ChainResult(
         draws=draws,

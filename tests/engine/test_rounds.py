@@ -6,19 +6,24 @@ import pytest
 from scipy import integrate, stats
 from scipy.spatial.distance import mahalanobis
 
+from honing.engine import rounds
 from honing.engine.diagnostics import gaussian_kl
 from honing.engine.errors import ConflictError
 from honing.engine.loop import CalibrationLoop
 from honing.engine.rounds import (
+    FINAL_ESS,
+    FINAL_POOL,
     PROXIMITY_POWER,
     RETAIN_RADII,
     SCORED_RADII,
+    STEERING_STEPS,
     _sorted_quantile,
     _to_reference,
     proximity_weight,
     refit,
     retained_runs,
 )
+from honing.engine.sampling import MAX_POOL, sample_posterior
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import state_from_bytes, state_to_bytes
 
@@ -247,6 +252,46 @@ def test_budget_is_never_exceeded_and_reported():
     assert loop.status in ("converged", "budget_exhausted")
     if loop.status == "budget_exhausted":
         assert len(loop.finished) == spec.max_runs
+
+
+def test_only_the_stopping_round_samples_to_the_final_effective_size():
+    # Rounds that go on steer the next batch from at most MAX_POOL draws; the round that
+    # stops the calibration runs its chain on to FINAL_ESS and serves up to FINAL_POOL draws,
+    # and its stored posterior moments are those of the served draws.
+    spec, sim = _small_loop()
+    loop = CalibrationLoop(spec)
+    steering = []
+    while loop.status == "collecting":
+        for p in loop.ask(5):
+            loop.tell(p.point_id, outputs=sim(spec.parameters_dict(p.theta)))
+        if loop.status == "collecting" and loop.state.round:
+            steering.append(loop.state.pool.shape[0])
+    assert steering and max(steering) <= MAX_POOL
+    diagnostics = loop.state.summary["diagnostics"]
+    assert diagnostics["ess_min"] >= FINAL_ESS, diagnostics["warnings"]
+    assert MAX_POOL < loop.state.pool.shape[0] <= FINAL_POOL
+    served = _to_reference(spec, loop.state.pool[:, : spec.dim])
+    np.testing.assert_allclose(loop.state.arrays["post_mean"], served.mean(axis=0))
+
+
+def test_steering_chains_stop_at_their_cap_and_the_served_chain_does_not(monkeypatch):
+    # Every round's first chain is capped at STEERING_STEPS; the stopping round's second chain
+    # (the one served) keeps the sampler's own cap and asks for FINAL_ESS.
+    calls = []
+
+    def recording(*args, **kwargs):
+        calls.append(kwargs)
+        return sample_posterior(*args, **kwargs)
+
+    monkeypatch.setattr(rounds, "sample_posterior", recording)
+    spec, sim = _small_loop()
+    loop = CalibrationLoop(spec)
+    loop.run(lambda p: sim(p))
+    assert loop.status in ("converged", "budget_exhausted")
+    *steering, served = calls
+    assert len(steering) == loop.state.round
+    assert all(c["max_steps"] == STEERING_STEPS and "min_ess" not in c for c in steering)
+    assert "max_steps" not in served and served["min_ess"] == FINAL_ESS
 
 
 def test_runs_scored_are_the_retained_runs_within_three_radii():

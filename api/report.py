@@ -240,6 +240,7 @@ _DIAGNOSTIC_LABELS = (
     ("validation_error", "Out-of-sample surrogate error (noise units)"),
     ("trust_mean", "Mean trust of the latest runs"),
     ("posterior_change", "Change from the previous round"),
+    ("kl_tolerance", "Change counted as none below"),
     ("surrogate_terms", "Surrogate terms"),
     ("surrogate_degree", "Surrogate degree"),
     ("ess_min", "Smallest effective sample size"),

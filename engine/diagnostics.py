@@ -167,12 +167,14 @@ def parameter_summary(draws: np.ndarray, map_value: float, prior_sd: float) -> d
 
 def converged(history: Sequence[dict[str, Any]]) -> bool:
     """True when validation error and posterior change met their tolerances in the last
-    `CONVERGED_ROUNDS` rounds."""
+    `CONVERGED_ROUNDS` rounds, each round's chain having met its own length rule (a chain
+    stopped at its cap has a rough ESS, and so a loose change tolerance)."""
     recent = list(history)[-CONVERGED_ROUNDS:]
     if len(recent) < CONVERGED_ROUNDS:
         return False
     return all(
-        h.get("validation_error") is not None
+        h.get("chain_complete", True)
+        and h.get("validation_error") is not None
         and h.get("posterior_change") is not None
         and h["validation_error"] < VALIDATION_TOLERANCE
         and h["posterior_change"] < h["kl_tolerance"]

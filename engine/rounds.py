@@ -16,8 +16,10 @@ The round, in order:
    posterior;
 4. sample the surrogate posterior with emcee, the likelihood's variance widened by the
    surrogate's honest error, and multiplied by the learned probability that the simulator
-   succeeds;
-5. summarise, compare with the previous posterior, and draw the next batch from the pool.
+   succeeds, the chain capped at `STEERING_STEPS`;
+5. compare with the previous posterior and decide whether the calibration stops; if it does,
+   sample on to `FINAL_ESS` for the posterior it serves;
+6. summarise, and draw the next batch from the pool.
 """
 
 from __future__ import annotations
@@ -91,17 +93,20 @@ SCORED_RADII = 3.0
 #: should have Monte Carlo errors well below its surrogate's: about 0.01 posterior sd on a
 #: mean, and stable 95% interval limits (an effective size of 10,000 is the usual advice for
 #: those; Kruschke, Doing Bayesian Data Analysis, 2nd ed., 2015, ch. 7, quoted from memory).
-#: Thinned by half an autocorrelation time, 20,000 draws hold about that effective size.
+#: Thinned by half an autocorrelation time, 20,000 draws hold about that effective size. The
+#: chain needs about 5 tau + 10,000 tau / 64 steps, within `sampling.MAX_STEPS` for tau up to
+#: about 120 (last rounds on B3 at delta = 8: tau 10-13); beyond, it stops short and warns.
 FINAL_ESS = 10_000
 FINAL_POOL = 20_000
 #: Longest chain of a round, before it is known whether the round stops the calibration: its
-#: draws steer the next batch and feed the convergence test, which also needs the surrogate
-#: validated on new runs, so a chain cut short while the surrogate is still poor cannot stop
-#: the calibration early. Early rounds on B3 at delta = 8 ran 8,000-20,000 steps (tau
-#: 160-650, acceptance 0.06-0.10) at 25-47 s each; capped at 4,000, whole calibrations took
-#: 68-99 s instead of 92-173 s, and their surrogate errors at the stop were 0.0048-0.0100
-#: (median 0.0071) against 0.0059-0.0120 (median 0.0093) over 6 seeds. The chain served
-#: once the calibration stops runs to `honing.engine.sampling.MAX_STEPS`.
+#: draws steer the next batch. A round whose chain stops at this cap does not count towards
+#: convergence (`diagnostics.converged`): its ESS, and so its change tolerance, is rough.
+#: Early rounds on B3 at delta = 8 ran 8,000-20,000 steps (tau 160-650, acceptance
+#: 0.06-0.10) at 25-47 s each; capped at 4,000, whole calibrations took 68-99 s instead of
+#: 92-173 s, stopped at 320-384 runs (median 352) as before (320-352, median 352), and their
+#: surrogate errors at the stop were 0.0048-0.0100 (median 0.0071) against 0.0059-0.0120
+#: (median 0.0093), over 6 seeds. The chain served once the calibration stops runs to
+#: `sampling.MAX_STEPS`.
 STEERING_STEPS = 4000
 #: Prior draws behind the round-0 summary.
 PRIOR_DRAWS = 4000
@@ -277,7 +282,11 @@ def posterior_samples(
     names = list(spec.names)
     if spec.noise_scale == "estimate" and state.pool.shape[1] > spec.dim:
         names.append("noise_scale")
-    return names, state.pool[: max(0, count)]
+    n = state.pool.shape[0]
+    if count >= n:
+        return names, state.pool
+    # Evenly spaced rows: the pool is in chain order, so its first rows are its earliest steps.
+    return names, state.pool[np.linspace(0, n - 1, max(0, count)).round().astype(int)]
 
 
 def refit(
@@ -342,6 +351,7 @@ def refit(
         "trust_mean": float(np.mean(runs.trust[kept])),
         "surrogate_terms": surrogate.n_terms,
         "kl_tolerance": kl_tolerance(spec.dim, float(chain.ess.min())),
+        "chain_complete": chain.complete,
     }
     history = [*state.history, entry]
     is_converged = converged(history)
@@ -350,11 +360,9 @@ def refit(
         status = "converged"
     elif runs.n_runs >= spec.max_runs:
         status = "budget_exhausted"
-    warnings = list(chain.warnings)
     if status != "collecting":
         chain = _final_chain(log_post, chain.draws, rng, laplace)
         mean, cov = chain.draws.mean(axis=0), _cov(chain.draws)
-        warnings.extend(chain.warnings)
 
     pool_xi = chain.draws
     theta = _to_physical(spec, pool_xi)
@@ -367,6 +375,7 @@ def refit(
         "trust_mean": entry["trust_mean"],
         "validation_error": validation,
         "posterior_change": change,
+        "kl_tolerance": entry["kl_tolerance"],
         "surrogate_terms": surrogate.n_terms,
         "surrogate_degree": surrogate.degree,
         "surrogate_components": surrogate.reduction.n_components,
@@ -379,7 +388,7 @@ def refit(
         "runs_retained": int(kept.size),
         "runs_scored": int(np.count_nonzero(scored)),
         "converged": is_converged,
-        "warnings": warnings,
+        "warnings": list(chain.warnings),
     }
 
     prior_predictive = state.summary.get("prior_predictive")
@@ -577,7 +586,7 @@ def _final_chain(
     """The posterior the calibration serves once it stops: a chain run to `FINAL_ESS`,
     started from the round's own draws, which are already in the posterior's bulk."""
     walkers = n_walkers(draws.shape[1])
-    initial = draws[rng.choice(draws.shape[0], walkers, replace=draws.shape[0] < walkers)]
+    initial = draws[rng.choice(draws.shape[0], walkers, replace=False)]
     return sample_posterior(
         log_post, initial, rng, proposal=laplace, min_ess=FINAL_ESS, max_pool=FINAL_POOL
     )

@@ -26,11 +26,13 @@ __all__ = [
 
 LogProb = Callable[[np.ndarray], np.ndarray]
 
-#: Effective sample size wanted per coordinate: Monte Carlo error of a mean under 1/sqrt(1000)
-#: ~ 0.032 posterior sd, inside the 0.05 sd the summaries promise. With 64 walkers or more the
-#: 50-tau rule asks for more than this already; the pool keeps less than the chain holds (a
-#: 2-d standard normal, 150 chains with the Laplace proposal: estimated ESS 5,000, and the
-#: 8,000 pooled draws' means scattered as for 3,300 independent draws).
+#: Effective sample size wanted per coordinate by default, enough for a round that steers the
+#: next batch: Monte Carlo error of a mean under 1/sqrt(1000) ~ 0.032 posterior sd (the
+#: posterior a stopped calibration serves asks for more: `honing.engine.rounds.FINAL_ESS`).
+#: With 64 walkers or more the 50-tau rule asks for more than this already; the pool keeps
+#: less than the chain holds (a 2-d standard normal, 150 chains with the Laplace proposal:
+#: estimated ESS 5,000, and the 8,000 pooled draws' means scattered as for 3,300 independent
+#: draws).
 MIN_ESS = 1000
 #: Chain length in autocorrelation times below which emcee's own estimate is unreliable
 #: (Foreman-Mackey et al. 2013; emcee's `integrated_time` uses the same 50).
@@ -38,14 +40,14 @@ MIN_TAU_MULTIPLE = 50
 #: Steps discarded at the start of the chain, in autocorrelation times (common practice: a few
 #: tau when walkers start near the target, as they do from the previous round's draws).
 BURN_TAU = 5
-#: Fewest steps between autocorrelation checks, and the hard cap on the chain. Each check
+#: Fewest steps between autocorrelation checks, and the default cap on the chain. Each check
 #: costs emcee's `integrated_time` over the whole chain (an FFT per walker and coordinate), so
 #: the chain runs on to the length the latest estimate of tau asks for, at most doubling, and
 #: checks stay few: a 20,000-step chain checked every 200 steps spent three quarters of its
 #: refit in those checks (48 of 62 s, 15 dimensions, 64 walkers).
 CHUNK_STEPS = 200
 MAX_STEPS = 20_000
-#: Largest pool of thinned draws kept per round, and the fewest draws per walker it takes
+#: Default largest pool of thinned draws (`max_pool`), and the fewest draws per walker taken
 #: from a chain stopped at its cap with a tau near the chain's length (thinning by tau / 2
 #: would leave one or two per walker; a converged chain, at least 50 tau long, keeps ~90).
 MAX_POOL = 8000
@@ -71,6 +73,9 @@ class ChainResult:
         Effective sample size per coordinate after burn-in.
     n_steps : int
     acceptance : float
+    complete : bool
+        Whether the chain met its length and effective-size rule; False when it stopped at
+        its step cap, its tau and ESS then being rough.
     warnings : list of str
     """
 
@@ -80,6 +85,7 @@ class ChainResult:
     ess: np.ndarray
     n_steps: int
     acceptance: float
+    complete: bool = True
     warnings: list[str] = field(default_factory=list)
 
 
@@ -145,6 +151,7 @@ def sample_posterior(
     seed = int(rng.integers(2**32))
     state = emcee.State(initial, random_state=np.random.RandomState(seed).get_state())
     warnings: list[str] = []
+    complete = False
     tau = np.full(dim, np.inf)
     chunk = CHUNK_STEPS
     while True:
@@ -155,6 +162,7 @@ def sample_posterior(
         burn = min(int(np.ceil(BURN_TAU * tau.max())), steps // 2)
         ess = walkers * (steps - burn) / tau
         if steps >= MIN_TAU_MULTIPLE * tau.max() and ess.min() >= min_ess:
+            complete = True
             break
         if steps >= max_steps:
             warnings.append(
@@ -177,6 +185,7 @@ def sample_posterior(
         ess=ess,
         n_steps=steps,
         acceptance=float(np.mean(sampler.acceptance_fraction)),
+        complete=complete,
         warnings=warnings,
     )
 

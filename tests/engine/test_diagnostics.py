@@ -5,7 +5,10 @@ import pytest
 from scipy import stats
 
 from honing.engine.diagnostics import (
+    CONVERGED_ROUNDS,
     KL_FLOOR,
+    VALIDATION_TOLERANCE,
+    converged,
     fit_trust,
     gaussian_kl,
     kl_tolerance,
@@ -82,3 +85,28 @@ def test_fit_trust_is_absolute_for_a_good_surrogate_and_relative_for_a_poor_one(
     np.testing.assert_allclose(fit_trust(poor), relative, rtol=1e-15)
     assert fit_trust(poor)[1] > 0.5 > trust_from_error(9.0)
     np.testing.assert_array_equal(fit_trust(np.full(3, np.nan)), np.ones(3))
+
+
+def _round(**changes):
+    entry = {"validation_error": 0.1, "posterior_change": 0.01, "kl_tolerance": 0.05}
+    return {**entry, **changes}
+
+
+@pytest.mark.parametrize(
+    ("last", "expected"),
+    [
+        ({}, True),
+        ({"chain_complete": True}, True),
+        ({"chain_complete": False}, False),
+        ({"validation_error": VALIDATION_TOLERANCE}, False),
+        ({"validation_error": None}, False),
+        ({"posterior_change": 0.05}, False),
+        ({"posterior_change": None}, False),
+    ],
+)
+def test_converged_needs_every_tolerance_and_a_complete_chain(last, expected):
+    # The rule of DEVELOPERS.md step 7 (a history without `chain_complete`, as stored before
+    # it was recorded, counts its chains as complete).
+    history = [_round() for _ in range(CONVERGED_ROUNDS - 1)] + [_round(**last)]
+    assert converged(history) is expected
+    assert converged(history[1:]) is False  # one round short

@@ -1,5 +1,7 @@
 """Statistical checks of the whole calibration loop against outside references."""
 
+import dataclasses
+
 import emcee
 import numpy as np
 import pytest
@@ -7,7 +9,7 @@ from scipy import integrate, stats
 from scipy.spatial.distance import mahalanobis
 
 from honing.engine import rounds
-from honing.engine.diagnostics import gaussian_kl
+from honing.engine.diagnostics import gaussian_kl, kl_tolerance
 from honing.engine.errors import ConflictError
 from honing.engine.loop import CalibrationLoop
 from honing.engine.rounds import (
@@ -19,11 +21,13 @@ from honing.engine.rounds import (
     STEERING_STEPS,
     _sorted_quantile,
     _to_reference,
+    posterior_samples,
     proximity_weight,
     refit,
     retained_runs,
+    start,
 )
-from honing.engine.sampling import MAX_POOL, sample_posterior
+from honing.engine.sampling import MAX_POOL, MAX_STEPS, MIN_ESS, sample_posterior
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import state_from_bytes, state_to_bytes
 
@@ -274,24 +278,66 @@ def test_only_the_stopping_round_samples_to_the_final_effective_size():
     np.testing.assert_allclose(loop.state.arrays["post_mean"], served.mean(axis=0))
 
 
-def test_steering_chains_stop_at_their_cap_and_the_served_chain_does_not(monkeypatch):
-    # Every round's first chain is capped at STEERING_STEPS; the stopping round's second chain
-    # (the one served) keeps the sampler's own cap and asks for FINAL_ESS.
+def test_steering_chains_have_their_cap_and_the_change_test_their_ess(monkeypatch):
+    # Every round's first chain is capped at STEERING_STEPS and its ESS sets the change
+    # tolerance in the history; the stopping round's second chain (the one served) keeps the
+    # sampler's own cap and asks for FINAL_ESS.
     calls = []
 
     def recording(*args, **kwargs):
-        calls.append(kwargs)
-        return sample_posterior(*args, **kwargs)
+        result = sample_posterior(*args, **kwargs)
+        calls.append((kwargs, result))
+        return result
 
     monkeypatch.setattr(rounds, "sample_posterior", recording)
     spec, sim = _small_loop()
     loop = CalibrationLoop(spec)
     loop.run(lambda p: sim(p))
     assert loop.status in ("converged", "budget_exhausted")
-    *steering, served = calls
+    *steering, (served, result) = calls
     assert len(steering) == loop.state.round
-    assert all(c["max_steps"] == STEERING_STEPS and "min_ess" not in c for c in steering)
-    assert "max_steps" not in served and served["min_ess"] == FINAL_ESS
+    for kwargs, _ in steering:
+        assert kwargs.get("max_steps", MAX_STEPS) == STEERING_STEPS
+        assert kwargs.get("min_ess", MIN_ESS) == MIN_ESS
+    assert served.get("max_steps", MAX_STEPS) == MAX_STEPS
+    assert served.get("min_ess", MIN_ESS) == FINAL_ESS
+    last_steering = steering[-1][1]
+    expected = kl_tolerance(spec.dim, float(last_steering.ess.min()))
+    assert loop.state.history[-1]["kl_tolerance"] == pytest.approx(expected, rel=1e-12)
+    assert loop.state.summary["diagnostics"]["ess_min"] == pytest.approx(result.ess.min())
+
+
+def test_rounds_whose_chain_stopped_at_its_cap_never_converge(monkeypatch):
+    # Steering chains asked for an ESS they cannot reach stop at their (shortened) cap with a
+    # warning: no such round counts towards convergence, so the calibration spends its budget,
+    # and the posterior it serves comes from a final chain that met its rule, without the
+    # steering chains' warnings.
+    def unreachable(*args, **kwargs):
+        if "min_ess" not in kwargs:
+            kwargs["min_ess"] = 10**9
+        return sample_posterior(*args, **kwargs)
+
+    monkeypatch.setattr(rounds, "sample_posterior", unreachable)
+    monkeypatch.setattr(rounds, "STEERING_STEPS", 400)
+    spec, sim = _small_loop()
+    loop = CalibrationLoop(spec)
+    loop.run(lambda p: sim(p))
+    assert loop.status == "budget_exhausted"
+    assert all(h["chain_complete"] is False for h in loop.state.history)
+    diagnostics = loop.state.summary["diagnostics"]
+    assert diagnostics["ess_min"] >= FINAL_ESS
+    assert not any("chain stopped" in w for w in diagnostics["warnings"])
+
+
+def test_posterior_samples_span_the_whole_pool():
+    # The pool is in chain order (step by step, all walkers each step): a sample of it must
+    # reach from its first rows to its last, not stop at the chain's earliest steps.
+    spec, _ = _small_loop()
+    state = dataclasses.replace(start(spec), pool=np.repeat(np.arange(100.0)[:, None], 2, 1))
+    names, few = posterior_samples(spec, state, 5)
+    assert names == ["k", "c"]
+    np.testing.assert_array_equal(few[:, 0], [0, 25, 50, 74, 99])
+    np.testing.assert_array_equal(posterior_samples(spec, state, 500)[1], state.pool)
 
 
 def test_runs_scored_are_the_retained_runs_within_three_radii():

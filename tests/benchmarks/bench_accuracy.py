@@ -352,7 +352,11 @@ def table(results: list[dict[str, Any]]) -> str:
         a, b = r["adaptive"], r["global"][-1]
         c = r.get("emcee")
         evals = "-" if c is None else f"{c['evals']}{'' if c['reached'] else '+'}"
-        if c is not None and c.get("first_evals") not in (None, c["evals"]):
+        if (
+            c is not None
+            and c["first_evals"] is not None
+            and (c["first_evals"] != c["evals"] or not c["reached"])
+        ):
             evals += f" (first {c['first_evals']})"
         ratio_c = "-" if c is None else f"{r['ratio_c_a']:.3g}{'' if c['reached'] else '+'}"
         lines.append(
@@ -395,7 +399,8 @@ def seed_summary(results: list[dict[str, Any]]) -> str:
             cells.append("-")
         first = [r["ratio_c_a_first"] for r in group if "ratio_c_a_first" in r]
         cells.append(
-            f"{np.median(first):.3g} [{min(first):.3g}, {max(first):.3g}] ({len(first)} hit)"
+            f"{np.median(first):.3g} [{min(first):.3g}, {max(first):.3g}] "
+            f"(hit on {len(first)} of {len(group)})"
             if first
             else "-"
         )
@@ -442,7 +447,11 @@ def main(argv: list[str] | None = None) -> int:
             for key, seed in tasks
         ]
         for future in as_completed(futures):
-            result = future.result()
+            try:
+                result = future.result()
+            except BaseException:
+                pool.shutdown(cancel_futures=True)
+                raise
             results.append(result)
             results.sort(key=lambda r: (keys.index(r["problem"]), r["seed"]))
             plot(result, args.out)

@@ -9,7 +9,7 @@ from scipy import integrate, stats
 from scipy.spatial.distance import mahalanobis
 
 from honing.engine import rounds
-from honing.engine.diagnostics import gaussian_kl, kl_tolerance
+from honing.engine.diagnostics import VALIDATION_TOLERANCE, gaussian_kl, kl_tolerance
 from honing.engine.errors import ConflictError
 from honing.engine.loop import CalibrationLoop
 from honing.engine.rounds import (
@@ -279,9 +279,9 @@ def test_only_the_stopping_round_samples_to_the_final_effective_size():
 
 
 def test_steering_chains_have_their_cap_and_the_change_test_their_ess(monkeypatch):
-    # Every round's first chain is capped at STEERING_STEPS and its ESS sets the change
-    # tolerance in the history; the stopping round's second chain (the one served) keeps the
-    # sampler's own cap and asks for FINAL_ESS.
+    # A round's first chain is capped at STEERING_STEPS until the surrogate validates, and
+    # its ESS sets the change tolerance in the history; the stopping round's second chain
+    # (the one served) keeps the sampler's own cap and asks for FINAL_ESS.
     calls = []
 
     def recording(*args, **kwargs):
@@ -296,9 +296,13 @@ def test_steering_chains_have_their_cap_and_the_change_test_their_ess(monkeypatc
     assert loop.status in ("converged", "budget_exhausted")
     *steering, (served, result) = calls
     assert len(steering) == loop.state.round
-    for kwargs, _ in steering:
-        assert kwargs.get("max_steps", MAX_STEPS) == STEERING_STEPS
+    caps = []
+    for (kwargs, _), entry in zip(steering, loop.state.history, strict=True):
+        validated = (entry["validation_error"] or np.inf) < VALIDATION_TOLERANCE
+        caps.append(kwargs.get("max_steps", MAX_STEPS))
+        assert caps[-1] == (MAX_STEPS if validated else STEERING_STEPS)
         assert kwargs.get("min_ess", MIN_ESS) == MIN_ESS
+    assert set(caps) == {MAX_STEPS, STEERING_STEPS}
     assert served.get("max_steps", MAX_STEPS) == MAX_STEPS
     assert served.get("min_ess", MIN_ESS) == FINAL_ESS
     last_steering = steering[-1][1]
@@ -308,17 +312,16 @@ def test_steering_chains_have_their_cap_and_the_change_test_their_ess(monkeypatc
 
 
 def test_rounds_whose_chain_stopped_at_its_cap_never_converge(monkeypatch):
-    # Steering chains asked for an ESS they cannot reach stop at their (shortened) cap with a
-    # warning: no such round counts towards convergence, so the calibration spends its budget,
-    # and the posterior it serves comes from a final chain that met its rule, without the
-    # steering chains' warnings.
+    # Every round's first chain asked for an ESS it cannot reach stops at its (shortened) cap
+    # with a warning: no such round counts towards convergence, so the calibration spends its
+    # budget, and the posterior it serves comes from a final chain that met its rule,
+    # without the first chains' warnings.
     def unreachable(*args, **kwargs):
         if "min_ess" not in kwargs:
-            kwargs["min_ess"] = 10**9
+            kwargs.update(min_ess=10**9, max_steps=400)
         return sample_posterior(*args, **kwargs)
 
     monkeypatch.setattr(rounds, "sample_posterior", unreachable)
-    monkeypatch.setattr(rounds, "STEERING_STEPS", 400)
     spec, sim = _small_loop()
     loop = CalibrationLoop(spec)
     loop.run(lambda p: sim(p))

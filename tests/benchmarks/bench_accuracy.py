@@ -56,12 +56,12 @@ from typing import Any
 
 import emcee
 import numpy as np
-from threadpoolctl import threadpool_limits
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from problems import Problem, Reference, all_problems
 
+from honing.api.server import one_blas_thread_unless_set
 from honing.engine.diagnostics import gaussian_kl
 from honing.engine.loop import CalibrationLoop
 from honing.engine.rounds import refit, start
@@ -441,7 +441,9 @@ def main(argv: list[str] | None = None) -> int:
     tasks = [(key, seed) for key in keys for seed in range(args.seeds)]
     results: list[dict[str, Any]] = []
     context = multiprocessing.get_context("spawn")
-    with ProcessPoolExecutor(args.jobs, mp_context=context, initializer=_one_thread) as pool:
+    with ProcessPoolExecutor(
+        args.jobs, mp_context=context, initializer=one_blas_thread_unless_set
+    ) as pool:
         futures = [
             pool.submit(bench_one, key, seed, not args.no_emcee, args.seeds > 1)
             for key, seed in tasks
@@ -475,11 +477,6 @@ def bench_one(key: str, seed: int, with_emcee: bool, labelled: bool) -> dict[str
     if labelled:
         result["key"] = f"{key}-s{seed}"
     return result
-
-
-def _one_thread() -> None:
-    """One BLAS thread per worker, so that the workers share the cores without oversubscribing."""
-    threadpool_limits(1)
 
 
 if __name__ == "__main__":

@@ -19,6 +19,7 @@ __all__ = [
     "marginal_kl",
     "parameter_summary",
     "trust_from_error",
+    "unmet_conditions",
 ]
 
 #: Scale of the trust index, in noise units: a run whose outputs the surrogate predicted within
@@ -180,3 +181,50 @@ def converged(history: Sequence[dict[str, Any]]) -> bool:
         and h["posterior_change"] < h["kl_tolerance"]
         for h in recent
     )
+
+
+def unmet_conditions(history: Sequence[dict[str, Any]]) -> list[str]:
+    """What kept the last `CONVERGED_ROUNDS` rounds from meeting `converged`, one phrase per
+    condition, each with the worst value behind it; empty when they meet it.
+
+    A calibration that spends its budget without converging reports these, so that its user
+    can tell whether the surrogate was still wrong where the posterior lies, the posterior
+    still moving between rounds, or the sampler's chain too short to measure the change.
+    """
+    recent = list(history)[-CONVERGED_ROUNDS:]
+    reasons = []
+    if len(recent) < CONVERGED_ROUNDS:
+        reasons.append(
+            f"only {len(recent)} round(s) fitted, and {CONVERGED_ROUNDS} in a row must agree"
+        )
+    unscored = [h["round"] for h in recent if h.get("validation_error") is None]
+    if unscored:
+        reasons.append(f"no new runs scored the surrogate of round {unscored[-1]}")
+    scored = [h for h in recent if h.get("validation_error") is not None]
+    worst = max(((h["validation_error"], h["round"]) for h in scored), default=None)
+    if worst is not None and worst[0] >= VALIDATION_TOLERANCE:
+        reasons.append(
+            f"the surrogate missed new runs by {worst[0]:.3g} noise sd (rms) in round {worst[1]}, "
+            f"where convergence needs under {VALIDATION_TOLERANCE:g}"
+        )
+    unmeasured = [h["round"] for h in recent if h.get("posterior_change") is None]
+    if unmeasured:
+        reasons.append(f"round {unmeasured[-1]} had no earlier posterior to compare with")
+    moving = [
+        (h["posterior_change"], h["round"], h["kl_tolerance"])
+        for h in recent
+        if h.get("posterior_change") is not None and h["posterior_change"] >= h["kl_tolerance"]
+    ]
+    if moving:
+        change, round_, tolerance = max(moving)
+        reasons.append(
+            f"the posterior still moved by {change:.3g} nats in round {round_}, "
+            f"where convergence needs under {tolerance:.3g}"
+        )
+    capped = [h["round"] for h in recent if not h.get("chain_complete", True)]
+    if capped:
+        reasons.append(
+            f"the sampler's chain ran to its step cap in round {capped[-1]}, too short to "
+            "measure the change"
+        )
+    return reasons

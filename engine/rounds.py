@@ -40,6 +40,7 @@ from honing.engine.diagnostics import (
     marginal_kl,
     parameter_summary,
     trust_from_error,
+    unmet_conditions,
 )
 from honing.engine.failures import FailureModel
 from honing.engine.likelihood import log_likelihood, noise_scale_draws, whiten
@@ -402,6 +403,8 @@ def refit(
     if prior_predictive is None:
         prior_predictive = _prior_predictive(spec, runs, rng)
     diagnostics["warnings"].extend(_prior_warnings(spec, prior_predictive))
+    if status == "budget_exhausted":
+        diagnostics["warnings"].append(_budget_warning(history))
 
     summary = {
         "round": state.round + 1,
@@ -714,6 +717,16 @@ def _prior_warnings(spec: CalibrationSpec, prior_predictive: dict[str, Any]) -> 
                 "explain the data, and the calibration answer would then be meaningless"
             )
     return out
+
+
+def _budget_warning(history: list[dict[str, Any]]) -> str:
+    """Why a calibration that spent its budget had not converged, in the user's terms."""
+    return (
+        "run budget spent before convergence: "
+        + "; ".join(unmet_conditions(history))
+        + ". Treat the posterior as provisional; a calibration with a larger budget can "
+        "import these runs and go on from them"
+    )
 
 
 def _without_fit(

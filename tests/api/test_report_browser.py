@@ -85,10 +85,11 @@ class _DevTools:
 def devtools(tmp_path: Path) -> Iterator[_DevTools]:
     profile = tmp_path / "profile"
     profile.mkdir()
+    browser = _chromium()  # skips before anything is opened when there is no browser
     log = (tmp_path / "chromium.log").open("wb")
     process = subprocess.Popen(
         [
-            _chromium(),
+            browser,
             "--headless",
             "--no-sandbox",
             "--disable-gpu",

@@ -13,6 +13,7 @@ from honing.engine.diagnostics import (
     gaussian_kl,
     kl_tolerance,
     trust_from_error,
+    unmet_conditions,
 )
 
 
@@ -92,6 +93,11 @@ def _round(**changes):
     return {**entry, **changes}
 
 
+def _history(last):
+    rounds = [_round() for _ in range(CONVERGED_ROUNDS - 1)] + [_round(**last)]
+    return [{**h, "round": i + 1} for i, h in enumerate(rounds)]
+
+
 @pytest.mark.parametrize(
     ("last", "expected"),
     [
@@ -107,6 +113,39 @@ def _round(**changes):
 def test_converged_needs_every_tolerance_and_a_complete_chain(last, expected):
     # The rule of DEVELOPERS.md step 7 (a history without `chain_complete`, as stored before
     # it was recorded, counts its chains as complete).
-    history = [_round() for _ in range(CONVERGED_ROUNDS - 1)] + [_round(**last)]
+    history = _history(last)
     assert converged(history) is expected
     assert converged(history[1:]) is False  # one round short
+
+
+@pytest.mark.parametrize(
+    ("last", "phrase"),
+    [
+        ({}, None),
+        ({"chain_complete": False}, "ran to its step cap in round 2"),
+        ({"validation_error": 0.35}, "missed new runs by 0.35 noise sd (rms) in round 2"),
+        ({"validation_error": None}, "no new runs scored the surrogate of round 2"),
+        ({"posterior_change": 0.08}, "still moved by 0.08 nats in round 2, where convergence"),
+        ({"posterior_change": None}, "round 2 had no earlier posterior"),
+    ],
+)
+def test_unmet_conditions_name_what_kept_the_rule_from_holding(last, phrase):
+    # Exactly the histories `converged` refuses have reasons, and each reason names the
+    # failing value and its round.
+    history = _history(last)
+    reasons = unmet_conditions(history)
+    assert (reasons == []) is converged(history)
+    if phrase is not None:
+        assert len(reasons) == 1 and phrase in reasons[0], reasons
+    assert unmet_conditions(history[1:])[0].startswith("only 1 round(s) fitted")
+
+
+def test_unmet_conditions_report_the_worst_round():
+    history = [
+        {**_round(validation_error=0.9, posterior_change=0.2), "round": 1},
+        {**_round(validation_error=0.3, posterior_change=0.6), "round": 2},
+    ]
+    reasons = unmet_conditions(history)
+    assert len(reasons) == 2
+    assert "by 0.9 noise sd (rms) in round 1" in reasons[0]
+    assert "moved by 0.6 nats in round 2" in reasons[1]

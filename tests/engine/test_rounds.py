@@ -311,6 +311,25 @@ def test_steering_chains_have_their_cap_and_the_change_test_their_ess(monkeypatc
     assert loop.state.summary["diagnostics"]["ess_min"] == pytest.approx(result.ess.min())
 
 
+def test_a_budget_spent_before_convergence_is_explained():
+    # Two rounds (10 initial runs, one batch of 5): the first round's surrogate was never
+    # scored and its posterior had nothing to compare with, so the rule could not hold; the
+    # served warning says so. The same problem with room to converge carries no such warning.
+    spec, sim = _small_loop()
+    short = CalibrationSpec.from_dict({**spec.to_dict(), "budget": {"max_runs": 15}})
+    loop = CalibrationLoop(short)
+    loop.run(sim)
+    assert loop.status == "budget_exhausted" and loop.state.round == 2
+    warnings = loop.state.summary["diagnostics"]["warnings"]
+    (budget,) = [w for w in warnings if w.startswith("run budget spent before convergence")]
+    assert "no new runs scored the surrogate of round 1" in budget
+    assert "round 1 had no earlier posterior to compare with" in budget
+    roomy = CalibrationLoop(spec)
+    roomy.run(sim)
+    assert roomy.status == "converged"
+    assert not any("run budget" in w for w in roomy.state.summary["diagnostics"]["warnings"])
+
+
 def test_rounds_whose_chain_stopped_at_its_cap_never_converge(monkeypatch):
     # Every round's first chain asked for an ESS it cannot reach stops at its (shortened) cap
     # with a warning: no such round counts towards convergence, so the calibration spends its
@@ -330,6 +349,10 @@ def test_rounds_whose_chain_stopped_at_its_cap_never_converge(monkeypatch):
     diagnostics = loop.state.summary["diagnostics"]
     assert diagnostics["ess_min"] >= FINAL_ESS
     assert not any("chain stopped" in w for w in diagnostics["warnings"])
+    # The user is told why the budget ran out: the rounds' chains, not the surrogate.
+    (budget,) = [w for w in diagnostics["warnings"] if w.startswith("run budget spent")]
+    assert f"ran to its step cap in round {loop.state.round}" in budget
+    assert "missed new runs" not in budget
 
 
 def test_posterior_samples_span_the_whole_pool():

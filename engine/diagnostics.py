@@ -169,62 +169,69 @@ def parameter_summary(draws: np.ndarray, map_value: float, prior_sd: float) -> d
 def converged(history: Sequence[dict[str, Any]]) -> bool:
     """True when validation error and posterior change met their tolerances in the last
     `CONVERGED_ROUNDS` rounds, each round's chain having met its own length rule (a chain
-    stopped at its cap has a rough ESS, and so a loose change tolerance)."""
-    recent = list(history)[-CONVERGED_ROUNDS:]
-    if len(recent) < CONVERGED_ROUNDS:
-        return False
-    return all(
-        h.get("chain_complete", True)
-        and h.get("validation_error") is not None
-        and h.get("posterior_change") is not None
-        and h["validation_error"] < VALIDATION_TOLERANCE
-        and h["posterior_change"] < h["kl_tolerance"]
-        for h in recent
-    )
+    stopped at its cap has a rough ESS, and so a loose change tolerance): when
+    `unmet_conditions` finds nothing unmet."""
+    return not unmet_conditions(history)
 
 
 def unmet_conditions(history: Sequence[dict[str, Any]]) -> list[str]:
-    """What kept the last `CONVERGED_ROUNDS` rounds from meeting `converged`, one phrase per
-    condition, each with the worst value behind it; empty when they meet it.
+    """What keeps the last `CONVERGED_ROUNDS` rounds from counting as converged, one phrase
+    per condition with the value behind it and its round; empty when nothing does.
 
     A calibration that spends its budget without converging reports these, so that its user
-    can tell whether the surrogate was still wrong where the posterior lies, the posterior
-    still moving between rounds, or the sampler's chain too short to measure the change.
+    can tell whether the surrogate still mispredicted new runs, the posterior was still
+    moving between rounds, or a round's chain was too short to measure the change. A value
+    that is missing or not a number (a NaN stored as null) counts as unmet.
     """
     recent = list(history)[-CONVERGED_ROUNDS:]
+    labels = [h.get("round", len(history) - len(recent) + i + 1) for i, h in enumerate(recent)]
     reasons = []
     if len(recent) < CONVERGED_ROUNDS:
         reasons.append(
-            f"only {len(recent)} round(s) fitted, and {CONVERGED_ROUNDS} in a row must agree"
+            f"only {len(recent)} round(s) fitted, and {CONVERGED_ROUNDS} rounds in a row must "
+            "pass every check"
         )
-    unscored = [h["round"] for h in recent if h.get("validation_error") is None]
+    errors = [(h.get("validation_error"), r) for h, r in zip(recent, labels, strict=True)]
+    unscored = [r for e, r in errors if e is None]
     if unscored:
-        reasons.append(f"no new runs scored the surrogate of round {unscored[-1]}")
-    scored = [h for h in recent if h.get("validation_error") is not None]
-    worst = max(((h["validation_error"], h["round"]) for h in scored), default=None)
-    if worst is not None and worst[0] >= VALIDATION_TOLERANCE:
         reasons.append(
-            f"the surrogate missed new runs by {worst[0]:.3g} noise sd (rms) in round {worst[1]}, "
-            f"where convergence needs under {VALIDATION_TOLERANCE:g}"
+            f"round {unscored[-1]} had no new runs that an earlier surrogate had predicted, so "
+            "its surrogate could not be checked"
         )
-    unmeasured = [h["round"] for h in recent if h.get("posterior_change") is None]
-    if unmeasured:
-        reasons.append(f"round {unmeasured[-1]} had no earlier posterior to compare with")
-    moving = [
-        (h["posterior_change"], h["round"], h["kl_tolerance"])
-        for h in recent
-        if h.get("posterior_change") is not None and h["posterior_change"] >= h["kl_tolerance"]
+    missed = [(e, r) for e, r in errors if e is not None and not e < VALIDATION_TOLERANCE]
+    if missed:
+        error, round_ = max(missed, key=lambda m: (np.nan_to_num(m[0], nan=np.inf), m[1]))
+        reasons.append(
+            f"the runs new in round {round_} differed from the surrogate's predictions by "
+            f"{error:.3g} noise sd (rms), where convergence needs under {VALIDATION_TOLERANCE:g}"
+        )
+    changes = [
+        (h.get("posterior_change"), h.get("kl_tolerance"), r)
+        for h, r in zip(recent, labels, strict=True)
     ]
+    uncompared = [r for c, t, r in changes if c is None]
+    if uncompared:
+        reasons.append(f"round {uncompared[-1]} had no earlier posterior to compare with")
+    untolerated = [r for c, t, r in changes if c is not None and t is None]
+    if untolerated:
+        reasons.append(f"round {untolerated[-1]} recorded no tolerance for its change")
+    moving = [(c, t, r) for c, t, r in changes if c is not None and t is not None and not c < t]
     if moving:
-        change, round_, tolerance = max(moving)
+        change, tolerance, round_ = max(moving, key=lambda m: np.nan_to_num(m[0], nan=np.inf))
         reasons.append(
-            f"the posterior still moved by {change:.3g} nats in round {round_}, "
-            f"where convergence needs under {tolerance:.3g}"
+            f"the posterior still moved in round {round_}: by {change:.3g} nats, as much as a "
+            f"mean shifting {_kl_shift(change):.2g} sd, where convergence needs under "
+            f"{tolerance:.2g} nats ({_kl_shift(tolerance):.2g} sd)"
         )
-    capped = [h["round"] for h in recent if not h.get("chain_complete", True)]
+    capped = [r for h, r in zip(recent, labels, strict=True) if not h.get("chain_complete", True)]
     if capped:
         reasons.append(
-            f"the sampler's chain ran to its step cap in round {capped[-1]}, too short to "
-            "measure the change"
+            f"round {capped[-1]}'s sampler chain ran to its step cap, too short to measure "
+            "the change"
         )
     return reasons
+
+
+def _kl_shift(kl: float) -> float:
+    """Shift of a Gaussian's mean, in its sd, with KL divergence ``kl``: ``sqrt(2 kl)``."""
+    return float(np.sqrt(2.0 * kl))

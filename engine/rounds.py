@@ -404,7 +404,7 @@ def refit(
         prior_predictive = _prior_predictive(spec, runs, rng)
     diagnostics["warnings"].extend(_prior_warnings(spec, prior_predictive))
     if status == "budget_exhausted":
-        diagnostics["warnings"].append(_budget_warning(history))
+        diagnostics["warnings"].append(_budget_warning(history, runs.n_runs))
 
     summary = {
         "round": state.round + 1,
@@ -719,13 +719,14 @@ def _prior_warnings(spec: CalibrationSpec, prior_predictive: dict[str, Any]) -> 
     return out
 
 
-def _budget_warning(history: list[dict[str, Any]]) -> str:
-    """Why a calibration that spent its budget had not converged, in the user's terms."""
+def _budget_warning(history: list[dict[str, Any]], runs_spent: int) -> str:
+    """Why a calibration that spent its budget had not converged, and how to go on."""
     return (
         "run budget spent before convergence: "
         + "; ".join(unmet_conditions(history))
-        + ". Treat the posterior as provisional; a calibration with a larger budget can "
-        "import these runs and go on from them"
+        + ". Treat the posterior as provisional. To go on, create a calibration with the same "
+        f"spec and a budget above the {runs_spent} runs spent, and import its successful runs: it "
+        "refits on them and needs at least two more batches to converge"
     )
 
 
@@ -740,11 +741,14 @@ def _without_fit(
     """Fewer than two successful runs: keep the prior, hand out fresh space-filling points."""
     fresh = initial_design(families, spec.initial_runs + runs.n_runs, rng)[runs.n_runs :]
     status = "budget_exhausted" if runs.n_runs >= spec.max_runs else state.status
+    warnings = ["fewer than two successful runs: the surrogate cannot be fitted yet"]
+    if status == "budget_exhausted":
+        warnings.append(_budget_warning(state.history, runs.n_runs))
     summary = dict(state.summary)
     summary["diagnostics"] = {
         **_empty_diagnostics(),
         "failed_fraction": float(runs.failed.mean()) if runs.n_runs else 0.0,
-        "warnings": ["fewer than two successful runs: the surrogate cannot be fitted yet"],
+        "warnings": warnings,
     }
     summary["status"] = status
     return EngineState(

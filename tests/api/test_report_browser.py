@@ -86,42 +86,41 @@ def devtools(tmp_path: Path) -> Iterator[_DevTools]:
     profile = tmp_path / "profile"
     profile.mkdir()
     browser = _chromium()  # skips before anything is opened when there is no browser
-    log = (tmp_path / "chromium.log").open("wb")
-    process = subprocess.Popen(
-        [
-            browser,
-            "--headless",
-            "--no-sandbox",
-            "--disable-gpu",
-            "--disable-quic",
-            "--no-first-run",
-            "--disable-background-networking",
-            "--disable-component-update",
-            "--disable-sync",
-            f"--user-data-dir={profile}",
-            "--remote-debugging-port=0",
-            "--proxy-server=127.0.0.1:9",
-            "--host-resolver-rules=MAP * ~NOTFOUND",
-            f"--window-size={WIDTH},900",
-            "about:blank",
-        ],
-        stdout=subprocess.DEVNULL,
-        stderr=log,
-    )
-    session = None
-    try:
-        session = _DevTools(_page_socket(profile / "DevToolsActivePort", process))
-        yield session
-    finally:
-        if session is not None:
-            session.close()
-        process.terminate()
+    with (tmp_path / "chromium.log").open("wb") as log:
+        process = subprocess.Popen(
+            [
+                browser,
+                "--headless",
+                "--no-sandbox",
+                "--disable-gpu",
+                "--disable-quic",
+                "--no-first-run",
+                "--disable-background-networking",
+                "--disable-component-update",
+                "--disable-sync",
+                f"--user-data-dir={profile}",
+                "--remote-debugging-port=0",
+                "--proxy-server=127.0.0.1:9",
+                "--host-resolver-rules=MAP * ~NOTFOUND",
+                f"--window-size={WIDTH},900",
+                "about:blank",
+            ],
+            stdout=subprocess.DEVNULL,
+            stderr=log,
+        )
+        session = None
         try:
-            process.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            process.kill()
-            process.wait()
-        log.close()
+            session = _DevTools(_page_socket(profile / "DevToolsActivePort", process))
+            yield session
+        finally:
+            if session is not None:
+                session.close()
+            process.terminate()
+            try:
+                process.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                process.kill()
+                process.wait()
 
 
 def _page_socket(port_file: Path, process: subprocess.Popen[bytes]) -> str:

@@ -122,22 +122,35 @@ def test_converged_needs_every_tolerance_and_a_complete_chain(last, expected):
     ("last", "phrase"),
     [
         ({}, None),
-        ({"chain_complete": False}, "ran to its step cap in round 2"),
-        ({"validation_error": 0.35}, "missed new runs by 0.35 noise sd (rms) in round 2"),
-        ({"validation_error": None}, "no new runs scored the surrogate of round 2"),
-        ({"posterior_change": 0.08}, "still moved by 0.08 nats in round 2, where convergence"),
-        ({"posterior_change": None}, "round 2 had no earlier posterior"),
+        ({"chain_complete": False}, "round 2's sampler chain ran to its step cap"),
+        (
+            {"validation_error": VALIDATION_TOLERANCE},
+            f"new in round 2 differed from the surrogate's predictions by {VALIDATION_TOLERANCE:g}",
+        ),
+        ({"validation_error": float("nan")}, "predictions by nan noise sd"),
+        ({"validation_error": None}, "round 2 had no new runs that an earlier surrogate"),
+        ({"posterior_change": 0.05}, "still moved in round 2: by 0.05 nats, as much as a mean"),
+        ({"posterior_change": None}, "round 2 had no earlier posterior to compare with"),
+        ({"kl_tolerance": None}, "round 2 recorded no tolerance for its change"),
     ],
 )
 def test_unmet_conditions_name_what_kept_the_rule_from_holding(last, phrase):
-    # Exactly the histories `converged` refuses have reasons, and each reason names the
-    # failing value and its round.
+    # Exactly the histories `converged` refuses have reasons (at the tolerances themselves
+    # too), and each reason names the failing value and its round.
     history = _history(last)
     reasons = unmet_conditions(history)
-    assert (reasons == []) is converged(history)
+    assert (reasons == []) is converged(history) is (phrase is None)
     if phrase is not None:
         assert len(reasons) == 1 and phrase in reasons[0], reasons
     assert unmet_conditions(history[1:])[0].startswith("only 1 round(s) fitted")
+
+
+def test_unmet_conditions_read_histories_without_round_numbers():
+    # Rounds are named by position when an entry does not carry its number.
+    history = [_round(), _round(posterior_change=0.2)]
+    (reason,) = unmet_conditions(history)
+    assert "moved in round 2: by 0.2 nats, as much as a mean shifting 0.63 sd" in reason
+    assert "under 0.05 nats (0.32 sd)" in reason  # sqrt(2 * 0.05) = 0.316
 
 
 def test_unmet_conditions_report_the_worst_round():
@@ -147,5 +160,5 @@ def test_unmet_conditions_report_the_worst_round():
     ]
     reasons = unmet_conditions(history)
     assert len(reasons) == 2
-    assert "by 0.9 noise sd (rms) in round 1" in reasons[0]
-    assert "moved by 0.6 nats in round 2" in reasons[1]
+    assert "new in round 1 differed from the surrogate's predictions by 0.9 noise" in reasons[0]
+    assert "moved in round 2: by 0.6 nats" in reasons[1]

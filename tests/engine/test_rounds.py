@@ -312,9 +312,9 @@ def test_steering_chains_have_their_cap_and_the_change_test_their_ess(monkeypatc
 
 
 def test_a_budget_spent_before_convergence_is_explained():
-    # Two rounds (10 initial runs, one batch of 5): the first round's surrogate was never
-    # scored and its posterior had nothing to compare with, so the rule could not hold; the
-    # served warning says so. The same problem with room to converge carries no such warning.
+    # Two rounds (10 initial runs, one batch of 5): round 1, the first fit, had no earlier
+    # surrogate to check and no earlier posterior to compare with, so the rule could not hold;
+    # the served warning says so. The same problem with room to converge has no such warning.
     spec, sim = _small_loop()
     short = CalibrationSpec.from_dict({**spec.to_dict(), "budget": {"max_runs": 15}})
     loop = CalibrationLoop(short)
@@ -322,12 +322,30 @@ def test_a_budget_spent_before_convergence_is_explained():
     assert loop.status == "budget_exhausted" and loop.state.round == 2
     warnings = loop.state.summary["diagnostics"]["warnings"]
     (budget,) = [w for w in warnings if w.startswith("run budget spent before convergence")]
-    assert "no new runs scored the surrogate of round 1" in budget
+    assert "round 1 had no new runs that an earlier surrogate had predicted" in budget
     assert "round 1 had no earlier posterior to compare with" in budget
+    assert "a budget above the 15 runs spent" in budget
+    assert "round 2" not in budget  # its surrogate validated and its change was measured
     roomy = CalibrationLoop(spec)
     roomy.run(sim)
     assert roomy.status == "converged"
     assert not any("run budget" in w for w in roomy.state.summary["diagnostics"]["warnings"])
+
+
+def test_a_budget_spent_on_failed_runs_is_explained():
+    # No run ever succeeds: no surrogate was fitted, and the warning says so beside the
+    # fit's own.
+    spec, _ = _small_loop()
+    short = CalibrationSpec.from_dict({**spec.to_dict(), "budget": {"max_runs": 12}})
+    loop = CalibrationLoop(short)
+    while loop.status == "collecting":
+        for p in loop.ask(4):
+            loop.tell(p.point_id, error="solver diverged")
+    assert loop.status == "budget_exhausted" and loop.state.round == 0
+    warnings = loop.state.summary["diagnostics"]["warnings"]
+    assert warnings[0].startswith("fewer than two successful runs")
+    assert warnings[1].startswith("run budget spent before convergence: only 0 round(s) fitted")
+    assert "above the 12 runs spent" in warnings[1]
 
 
 def test_rounds_whose_chain_stopped_at_its_cap_never_converge(monkeypatch):
@@ -351,8 +369,7 @@ def test_rounds_whose_chain_stopped_at_its_cap_never_converge(monkeypatch):
     assert not any("chain stopped" in w for w in diagnostics["warnings"])
     # The user is told why the budget ran out: the rounds' chains, not the surrogate.
     (budget,) = [w for w in diagnostics["warnings"] if w.startswith("run budget spent")]
-    assert f"ran to its step cap in round {loop.state.round}" in budget
-    assert "missed new runs" not in budget
+    assert f"round {loop.state.round}'s sampler chain ran to its step cap" in budget
 
 
 def test_posterior_samples_span_the_whole_pool():

@@ -23,7 +23,13 @@ from typing import Any, TextIO
 from honing.client._client import DEFAULT_URL, Client
 from honing.client.errors import ClientError, SettingsError
 from honing.client.files import load_spec, read_runs
-from honing.client.tables import CAUTION, diagnostics_line, format_number, posterior_table
+from honing.client.tables import (
+    CAUTION,
+    diagnostics_line,
+    format_number,
+    posterior_table,
+    warning_lines,
+)
 from honing.client.worker import Progress, Worker, WorkerOptions
 
 __all__ = ["EXIT", "main"]
@@ -366,17 +372,30 @@ def _status(args: argparse.Namespace) -> int:
             info = client.wait(args.id, timeout=args.timeout, interval=max(args.interval, 0.1))
         else:
             info = client.calibration(args.id)
-    status = str(info.get("status"))
-    if args.json:
-        _out(json.dumps(info, indent=2))
-    else:
-        _out(
-            f"{args.id}  {status}  round {format_number(info.get('round'))}  runs "
-            f"{format_number(info.get('runs_completed'))} done, "
-            f"{format_number(info.get('runs_failed'))} failed, "
-            f"{format_number(info.get('runs_leased'))} leased"
-        )
+        status = str(info.get("status"))
+        if args.json:
+            _out(json.dumps(info, indent=2))
+        else:
+            _out(
+                f"{args.id}  {status}  round {format_number(info.get('round'))}  runs "
+                f"{format_number(info.get('runs_completed'))} done, "
+                f"{format_number(info.get('runs_failed'))} failed, "
+                f"{format_number(info.get('runs_leased'))} leased"
+            )
+            if status == "budget_exhausted":
+                for line in _budget_lines(client, args.id):
+                    _note(line)
     return FINISHED_EXIT.get(status, EXIT["timeout"])
+
+
+def _budget_lines(client: Client, cid: str) -> list[str]:
+    """Why the budget ran out before convergence, from the posterior's warnings; nothing if
+    the posterior cannot be read (the status line and exit code already say what matters)."""
+    try:
+        summary = client.posterior(cid)
+    except ClientError:
+        return []
+    return [w for w in warning_lines(summary) if w.startswith("warning: run budget spent")]
 
 
 def _posterior(args: argparse.Namespace) -> int:
@@ -388,6 +407,8 @@ def _posterior(args: argparse.Namespace) -> int:
         info = client.calibration(args.id)
     _out(posterior_table(summary, units=_units(info)))
     _out(diagnostics_line(summary))
+    for line in warning_lines(summary):
+        _out(line)
     _out(CAUTION)
     return EXIT["ok"]
 
@@ -485,11 +506,8 @@ def _demo(args: argparse.Namespace) -> int:
     _out("")
     _out(posterior_table(summary, units=_units({"spec": spec}), truth=demo.TRUE_PARAMETERS))
     _out(diagnostics_line(summary))
-    if code == EXIT["budget_exhausted"]:
-        _out(
-            "The run budget was used before the convergence checks passed; the posterior "
-            "above uses every run, with the surrogate's error folded into its width."
-        )
+    for line in warning_lines(summary):  # on a spent budget, what kept it from converging
+        _out(line)
     _out(f"report: {report}")
     _out(f"finished in {time.monotonic() - started:.0f} s")
     _out("The true values are known only because the data are synthetic. " + CAUTION)

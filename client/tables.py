@@ -6,7 +6,14 @@ import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-__all__ = ["CAUTION", "diagnostics_line", "format_number", "format_table", "posterior_table"]
+__all__ = [
+    "CAUTION",
+    "diagnostics_line",
+    "format_number",
+    "format_table",
+    "posterior_table",
+    "warning_lines",
+]
 
 #: One line shown under every posterior a person reads.
 CAUTION = (
@@ -80,6 +87,12 @@ def posterior_table(
             row.append(truth.get(name))
         rows.append(row)
     return format_table(headers, rows)
+
+
+def warning_lines(summary: Mapping[str, Any]) -> list[str]:
+    """The engine's warnings on a posterior, one ``warning: ...`` line each."""
+    diagnostics = summary.get("diagnostics") or {}
+    return [f"warning: {w}" for w in diagnostics.get("warnings") or []]
 
 
 def diagnostics_line(summary: Mapping[str, Any]) -> str:

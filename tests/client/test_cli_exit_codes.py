@@ -55,6 +55,49 @@ def test_status_exit_codes(fake_server: Any, cli: Any, status: str, code: int) -
     assert result.stdout.startswith(f"c1  {status}  round 4  runs 40 done, 1 failed")
 
 
+def test_status_explains_a_spent_budget_from_the_posterior(fake_server: Any, cli: Any) -> None:
+    fake_server.on("GET", CAL, calibration("budget_exhausted"))
+    reason = "run budget spent before convergence: round 4 had no earlier posterior"
+    warnings = ["prior check: 9 of 12 points lie outside", reason]
+    fake_server.on("GET", f"{CAL}/posterior", {"diagnostics": {"warnings": warnings}})
+    result = cli("status", "c1", url=fake_server.url, token="t")
+    assert result.returncode == 3
+    assert result.stderr == f"warning: {reason}\n"  # only the budget's reason, on stderr
+
+
+def test_status_of_a_spent_budget_without_a_posterior_still_exits_3(
+    fake_server: Any, cli: Any
+) -> None:
+    fake_server.on("GET", CAL, calibration("budget_exhausted"))  # posterior: 404
+    result = cli("status", "c1", url=fake_server.url, token="t")
+    assert result.returncode == 3 and result.stderr == ""
+    assert result.stdout.startswith("c1  budget_exhausted  round 4")
+
+
+def test_status_reads_no_posterior_unless_the_budget_is_spent(fake_server: Any, cli: Any) -> None:
+    fake_server.on("GET", CAL, calibration("converged"))
+    assert cli("status", "c1", url=fake_server.url, token="t").returncode == 0
+    assert fake_server.bodies("GET", f"{CAL}/posterior") == []
+
+
+def test_posterior_lists_the_engine_warnings_before_the_caution(fake_server: Any, cli: Any) -> None:
+    fake_server.on("GET", CAL, calibration("converged"))
+    summary = {
+        "round": 4,
+        "parameters": {"k": {"mean": 1.5, "sd": 0.1, "ci95": [1.3, 1.7]}},
+        "diagnostics": {"warnings": ["posterior chain stopped at 20000 steps", "prior check"]},
+    }
+    fake_server.on("GET", f"{CAL}/posterior", summary)
+    result = cli("posterior", "c1", url=fake_server.url, token="t")
+    assert result.returncode == 0, result.stderr
+    lines = result.stdout.splitlines()
+    assert lines[-3:-1] == [
+        "warning: posterior chain stopped at 20000 steps",
+        "warning: prior check",
+    ]
+    assert "independent measurements" in lines[-1]
+
+
 def test_status_wait_times_out_with_4(fake_server: Any, cli: Any) -> None:
     fake_server.on("GET", CAL, calibration("collecting"))
     result = cli(

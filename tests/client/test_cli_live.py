@@ -100,6 +100,9 @@ def test_worker_runs_a_calibration_to_its_end(
 
     status = cli("status", cid, url=live_server, token=token)
     assert status.returncode == result.returncode
+    # A spent budget comes with the engine's reason on stderr; convergence with nothing.
+    spent = "warning: run budget spent before convergence: "
+    assert status.stderr.startswith(spent) is (final == "budget_exhausted"), status.stderr
     waited = cli("status", cid, "--wait", "--json", url=live_server, token=token)
     assert waited.returncode == result.returncode
     assert json.loads(waited.stdout)["runs_completed"] == len(done)
@@ -110,6 +113,7 @@ def test_worker_runs_a_calibration_to_its_end(
     assert lines[0].split()[:4] == ["parameter", "unit", "mean", "sd"]
     assert lines[2].split()[:2] == ["a", "1/s"]
     assert "independent measurements" in table.stdout
+    assert (spent in table.stdout) is (final == "budget_exhausted")
 
     samples = tmp_path / "samples.csv"
     result = cli("samples", cid, "-n", "50", "-o", str(samples), url=live_server, token=token)

@@ -20,7 +20,7 @@ from pathlib import Path
 from types import FrameType, ModuleType
 from typing import Any, TextIO
 
-from honing.client._client import DEFAULT_URL, Client
+from honing.client._client import DEFAULT_URL, Client, RetryPolicy
 from honing.client.errors import ClientError, SettingsError
 from honing.client.files import load_spec, read_runs
 from honing.client.tables import (
@@ -389,11 +389,15 @@ def _status(args: argparse.Namespace) -> int:
 
 
 def _budget_lines(client: Client, cid: str) -> list[str]:
-    """Why the budget ran out before convergence, from the posterior's warnings; nothing if
-    the posterior cannot be read (the status line and exit code already say what matters)."""
+    """Why the budget ran out before convergence, from the posterior's warnings.
+
+    One attempt, and nothing if it fails: the status line and the exit code already say
+    what matters, and a retried read could hold them back for minutes.
+    """
+    client.retry = RetryPolicy(attempts=1)
     try:
         summary = client.posterior(cid)
-    except ClientError:
+    except (ClientError, ValueError):  # ValueError: an answer that is not JSON
         return []
     return [w for w in warning_lines(summary) if w.startswith("warning: run budget spent")]
 
@@ -508,6 +512,8 @@ def _demo(args: argparse.Namespace) -> int:
     _out(diagnostics_line(summary))
     for line in warning_lines(summary):  # on a spent budget, what kept it from converging
         _out(line)
+    if code == EXIT["budget_exhausted"]:
+        _out("In this demo the store is temporary: rerun with a larger --max-runs to go on.")
     _out(f"report: {report}")
     _out(f"finished in {time.monotonic() - started:.0f} s")
     _out("The true values are known only because the data are synthetic. " + CAUTION)

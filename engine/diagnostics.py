@@ -196,7 +196,7 @@ def unmet_conditions(history: Sequence[dict[str, Any]]) -> list[str]:
     if unscored:
         reasons.append(
             f"round {unscored[-1]} had no new runs that an earlier surrogate had predicted, so "
-            "its surrogate could not be checked"
+            "no surrogate's predictions were checked there"
         )
     missed = [(e, r) for e, r in errors if e is not None and not e < VALIDATION_TOLERANCE]
     if missed:

@@ -404,7 +404,7 @@ def refit(
         prior_predictive = _prior_predictive(spec, runs, rng)
     diagnostics["warnings"].extend(_prior_warnings(spec, prior_predictive))
     if status == "budget_exhausted":
-        diagnostics["warnings"].append(_budget_warning(history, runs.n_runs))
+        diagnostics["warnings"].append(_budget_warning(spec, history, runs))
 
     summary = {
         "round": state.round + 1,
@@ -719,14 +719,22 @@ def _prior_warnings(spec: CalibrationSpec, prior_predictive: dict[str, Any]) -> 
     return out
 
 
-def _budget_warning(history: list[dict[str, Any]], runs_spent: int) -> str:
-    """Why a calibration that spent its budget had not converged, and how to go on."""
+def _budget_warning(spec: CalibrationSpec, history: list[dict[str, Any]], runs: RunTable) -> str:
+    """Why a calibration that spent its budget had not converged, and how to go on.
+
+    Imported runs count towards a new calibration's budget, its first fit waits for a full
+    initial design, and that fit cannot count towards convergence: the smallest budget that
+    can converge is the runs kept, any shortfall of the initial design, and two batches.
+    """
+    kept = int(np.count_nonzero(~runs.failed))
+    least = kept + max(0, spec.initial_runs - kept) + 2 * spec.batch_size
     return (
         "run budget spent before convergence: "
         + "; ".join(unmet_conditions(history))
         + ". Treat the posterior as provisional. To go on, create a calibration with the same "
-        f"spec and a budget above the {runs_spent} runs spent, and import its successful runs: it "
-        "refits on them and needs at least two more batches to converge"
+        f"spec and a budget of at least {least} runs, and import the {kept} successful runs "
+        "into it: they count towards its budget, and it refits on them and then needs at "
+        "least two more batches to converge"
     )
 
 
@@ -743,7 +751,7 @@ def _without_fit(
     status = "budget_exhausted" if runs.n_runs >= spec.max_runs else state.status
     warnings = ["fewer than two successful runs: the surrogate cannot be fitted yet"]
     if status == "budget_exhausted":
-        warnings.append(_budget_warning(state.history, runs.n_runs))
+        warnings.append(_budget_warning(spec, state.history, runs))
     summary = dict(state.summary)
     summary["diagnostics"] = {
         **_empty_diagnostics(),

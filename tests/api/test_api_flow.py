@@ -197,3 +197,44 @@ def test_health_and_metrics(client: AppClient, settings) -> None:  # type: ignor
     assert 'honing_runs_total{state="done"} 1.0' in text
     assert "honing_refit_queue_depth 0.0" in text
     assert "honing_http_request_duration_seconds_bucket" in text
+
+
+def _drive(client: AppClient, cal: Calibration, refitter: Refitter) -> dict:
+    """Lease, run and report a batch at a time, each refit keeping up, until the calibration
+    stops; its final description. (Workers that run more than a batch between refits fold
+    several batches into one round.)"""
+    for _ in range(30):
+        for run in lease(client, cal, SPEC["design"]["batch_size"]):
+            report(client, cal, run)
+        info = client.get(cal.url, headers=cal.headers).json()
+        if info["status"] in ("converged", "budget_exhausted"):
+            return dict(info)
+        refitter.step()
+    raise AssertionError("the calibration did not stop")
+
+
+def test_a_spent_budget_says_how_to_go_on_and_that_way_works(
+    client: AppClient, refitter: Refitter
+) -> None:
+    # 12 runs: the initial design and one batch, so round 2 spends the budget. The warning
+    # names the smallest budget a new calibration importing the runs needs; with it, the
+    # new one gets its first fit and two batches after it, enough for the stop rule to hold
+    # when each refit keeps up with the workers.
+    short = create(client, {**SPEC, "budget": {"max_runs": 12}})
+    assert _drive(client, short, refitter)["status"] == "budget_exhausted"
+    posterior = client.get(f"{short.url}/posterior", headers=short.headers).json()
+    (warning,) = [w for w in posterior["diagnostics"]["warnings"] if "budget spent" in w]
+    # 12 successful runs; the initial design (8) is covered; two batches of 4.
+    assert "a budget of at least 20 runs, and import the 12 successful runs" in warning
+    runs = client.get(f"{short.url}/runs?state=done", headers=short.headers).json()["runs"]
+    archive = [{"parameters": r["parameters"], "outputs": r["outputs"]} for r in runs]
+    again = create(client, {**SPEC, "budget": {"max_runs": 20}})
+    response = client.post(
+        f"{again.url}/runs/import", json={"runs": archive}, headers=again.headers
+    )
+    assert response.json() == {"imported": 12}
+    refitter.step()  # the first fit, on the imported runs
+    final = _drive(client, again, refitter)
+    assert final["runs_completed"] == 20
+    history = client.get(f"{again.url}/posterior", headers=again.headers).json()
+    assert history["round"] == 3  # a first fit, then one round per batch: room to converge

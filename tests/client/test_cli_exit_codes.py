@@ -74,6 +74,21 @@ def test_status_of_a_spent_budget_without_a_posterior_still_exits_3(
     assert result.stdout.startswith("c1  budget_exhausted  round 4")
 
 
+def test_status_of_a_spent_budget_survives_a_garbled_posterior(fake_server: Any, cli: Any) -> None:
+    fake_server.on("GET", CAL, calibration("budget_exhausted"))
+    fake_server.on("GET", f"{CAL}/posterior", "not json")
+    result = cli("status", "c1", url=fake_server.url, token="t")
+    assert result.returncode == 3 and result.stderr == ""
+
+
+def test_status_json_on_a_spent_budget_is_only_json(fake_server: Any, cli: Any) -> None:
+    fake_server.on("GET", CAL, calibration("budget_exhausted"))
+    result = cli("status", "c1", "--json", url=fake_server.url, token="t")
+    assert result.returncode == 3
+    assert json.loads(result.stdout)["status"] == "budget_exhausted"
+    assert result.stderr == "" and fake_server.bodies("GET", f"{CAL}/posterior") == []
+
+
 def test_status_reads_no_posterior_unless_the_budget_is_spent(fake_server: Any, cli: Any) -> None:
     fake_server.on("GET", CAL, calibration("converged"))
     assert cli("status", "c1", url=fake_server.url, token="t").returncode == 0

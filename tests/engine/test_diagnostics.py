@@ -145,6 +145,46 @@ def test_unmet_conditions_name_what_kept_the_rule_from_holding(last, phrase):
     assert unmet_conditions(history[1:])[0].startswith("only 1 round(s) fitted")
 
 
+def _rule_as_documented(history):
+    # DEVELOPERS.md step 7, written out independently of the engine: the last
+    # CONVERGED_ROUNDS rounds each validated below the tolerance, changed less than their own
+    # tolerance, and had a complete chain (absent counts as complete).
+    recent = history[-CONVERGED_ROUNDS:]
+    return len(recent) == CONVERGED_ROUNDS and all(
+        h.get("chain_complete", True)
+        and h["validation_error"] is not None
+        and h["posterior_change"] is not None
+        and h["validation_error"] < VALIDATION_TOLERANCE
+        and h["posterior_change"] < h["kl_tolerance"]
+        for h in recent
+    )
+
+
+def test_converged_and_unmet_conditions_agree_with_the_documented_rule():
+    # Every round from a grid of values at, around and beside the tolerances (None and NaN
+    # included), in histories of one to three rounds.
+    values = {
+        "validation_error": [None, float("nan"), 0.05, VALIDATION_TOLERANCE, 0.5],
+        "posterior_change": [None, float("nan"), 0.01, 0.05, 0.2],
+        "chain_complete": [None, True, False],  # None: the key is absent
+    }
+    rounds = []
+    for v, c, complete in itertools.product(*values.values()):
+        entry = {"validation_error": v, "posterior_change": c, "kl_tolerance": 0.05}
+        if complete is not None:
+            entry["chain_complete"] = complete
+        rounds.append(entry)
+    passing = _round()
+    checked = 0
+    for entry in rounds:
+        for history in ([entry], [passing, entry], [entry, passing], [passing, passing, entry]):
+            expected = _rule_as_documented(history)
+            assert converged(history) is expected, history
+            assert (unmet_conditions(history) == []) is expected, history
+            checked += 1
+    assert checked == 4 * len(rounds) == 300
+
+
 def test_unmet_conditions_read_histories_without_round_numbers():
     # Rounds are named by position when an entry does not carry its number.
     history = [_round(), _round(posterior_change=0.2)]

@@ -324,7 +324,8 @@ def test_a_budget_spent_before_convergence_is_explained():
     (budget,) = [w for w in warnings if w.startswith("run budget spent before convergence")]
     assert "round 1 had no new runs that an earlier surrogate had predicted" in budget
     assert "round 1 had no earlier posterior to compare with" in budget
-    assert "a budget above the 15 runs spent" in budget
+    # All 15 runs succeeded: a new calibration that imports them needs room for two batches.
+    assert "a budget of at least 25 runs, and import the 15 successful runs" in budget
     assert "round 2" not in budget  # its surrogate validated and its change was measured
     roomy = CalibrationLoop(spec)
     roomy.run(sim)
@@ -345,7 +346,8 @@ def test_a_budget_spent_on_failed_runs_is_explained():
     warnings = loop.state.summary["diagnostics"]["warnings"]
     assert warnings[0].startswith("fewer than two successful runs")
     assert warnings[1].startswith("run budget spent before convergence: only 0 round(s) fitted")
-    assert "above the 12 runs spent" in warnings[1]
+    # Nothing to import: a whole initial design (10) and two batches (2 x 5) are needed.
+    assert "a budget of at least 20 runs, and import the 0 successful runs" in warnings[1]
 
 
 def test_rounds_whose_chain_stopped_at_its_cap_never_converge(monkeypatch):

@@ -37,5 +37,9 @@ def test_demo_runs_end_to_end_with_a_small_budget(tmp_path: Path) -> None:
     assert f"report: {report}" in out
     assert "<html" in report.read_text().lower()
     assert "independent measurements" in out
+    # A spent budget is explained, with the way to go on that suits a temporary store.
+    spent = result.returncode == 3
+    assert ("warning: run budget spent before convergence" in out) is spent
+    assert ("rerun with a larger --max-runs" in out) is spent
     assert "runs 34 done, 0 failed" in result.stderr
     assert "Traceback" not in result.stderr

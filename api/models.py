@@ -13,6 +13,7 @@ from typing import Annotated, Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 __all__ = [
+    "BudgetRequest",
     "CalibrationResponse",
     "CreateResponse",
     "HealthResponse",
@@ -118,6 +119,16 @@ class SurrogateSpec(_Input):
 
 class BudgetSpec(_Input):
     max_runs: WholeNumber = 400
+
+
+class BudgetChange(_Input):
+    max_runs: WholeNumber = Field(description="the new run budget, larger than the current one")
+
+
+class BudgetRequest(_Input):
+    """Body of PATCH /v1/calibrations/{id}: a larger run budget (nothing else can change)."""
+
+    budget: BudgetChange
 
 
 class SpecRequest(_Input):

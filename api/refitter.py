@@ -26,7 +26,7 @@ import time
 from collections.abc import Callable
 
 from honing.api.metrics import Metrics
-from honing.api.service import CalibrationService, proposal_points, run_table
+from honing.api.service import CalibrationService, budgeted, proposal_points, run_table
 from honing.api.store import Store, StoreUnavailable
 from honing.engine.rounds import refit, refit_due
 from honing.engine.state import state_to_bytes
@@ -97,7 +97,7 @@ class Refitter:
             self.store.finish_refit(calibration_id)
             return self._outcome("skipped")
         try:
-            spec = self.service.spec(calibration_id)
+            spec = budgeted(self.service.spec(calibration_id), meta)
             state = self.service.state(meta)
             records = self.store.finished_runs(calibration_id)
             finished = meta.done + meta.failed

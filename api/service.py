@@ -9,6 +9,7 @@ change under a given key).
 from __future__ import annotations
 
 import base64
+import dataclasses
 import json
 import re
 import secrets
@@ -29,7 +30,14 @@ from honing.api.errors import NotFound
 from honing.api.metrics import Metrics
 from honing.api.store import CalibrationMeta, NewCalibration, RunRecord, Store
 from honing.engine.errors import ConflictError, SpecError
-from honing.engine.rounds import posterior_samples, prediction_error, refit_due, start, trust_index
+from honing.engine.rounds import (
+    posterior_samples,
+    prediction_error,
+    raise_budget,
+    refit_due,
+    start,
+    trust_index,
+)
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import EngineState, RunTable, state_from_bytes, state_to_bytes
 
@@ -55,6 +63,8 @@ _CALIBRATION_ID = re.compile(r"[A-Za-z0-9_-]{1,64}")
 _RUN_ID = re.compile(r"r[0-9]{1,15}")
 #: A report re-reads a run that changed under it (expired or finished meanwhile) this often.
 _REPORT_ATTEMPTS = 5
+#: Tries of the budget's compare-and-swap against refits that keep moving the state on.
+_BUDGET_ATTEMPTS = 5
 #: Output values above which a report's checks run in a worker thread, off the event loop.
 LOOP_OUTPUT_VALUES = 2000
 
@@ -130,12 +140,21 @@ def run_table(spec: CalibrationSpec, records: Sequence[RunRecord]) -> RunTable:
     return RunTable(theta, outputs, failed, trust, error)
 
 
+def budgeted(spec: CalibrationSpec, meta: CalibrationMeta) -> CalibrationSpec:
+    """The spec with the run budget in force: the one set after creation, if any."""
+    if meta.max_runs is None or meta.max_runs == spec.max_runs:
+        return spec
+    return dataclasses.replace(spec, max_runs=meta.max_runs)
+
+
 def _due(spec: CalibrationSpec, state: EngineState, meta: CalibrationMeta) -> bool:
     """Whether the finished runs in ``meta`` call for a refit of ``state`` (never once the
     calibration has failed). ``meta`` must be fresh: read after the write that may complete
-    a batch."""
+    a batch; its budget is the one in force."""
     done = meta.done + meta.failed
-    return not meta.failed_error and refit_due(spec, state, done, meta.leased, meta.queued)
+    return not meta.failed_error and refit_due(
+        budgeted(spec, meta), state, done, meta.leased, meta.queued
+    )
 
 
 def _checked_outputs(
@@ -367,11 +386,12 @@ class CalibrationService:
         return calibration_id, token, state.status
 
     def describe(self, calibration_id: str) -> dict[str, Any]:
-        """Spec, status, counts and round of a calibration."""
+        """Spec (with the budget in force), status, counts and round of a calibration."""
         meta = self.meta(calibration_id)
+        spec = budgeted(self.spec(calibration_id), meta)
         return {
             "id": meta.id,
-            "name": self.spec(calibration_id).name,
+            "name": spec.name,
             "status": self.status(meta),
             "round": meta.round,
             "runs_completed": meta.done,
@@ -380,8 +400,31 @@ class CalibrationService:
             "runs_queued": meta.queued,
             "created_at": rfc3339(meta.created_at),
             "error": meta.failed_error,
-            "spec": self.spec(calibration_id).to_dict(),
+            "spec": spec.to_dict(),
         }
+
+    def raise_budget(self, calibration_id: str, max_runs: int) -> dict[str, Any]:
+        """Allow up to ``max_runs`` runs in all; a calibration the old budget stopped collects
+        again from where it stood (`honing.engine.rounds.raise_budget`). Returns `describe`.
+
+        One compare-and-swap on the state version: a refit that began under the old budget
+        fails its swap and runs again under the new one.
+        """
+        for _ in range(_BUDGET_ATTEMPTS):
+            meta = self.meta(calibration_id)
+            if meta.failed_error:
+                raise ConflictError("the calibration has failed; a larger budget cannot reopen it")
+            state = self.state(meta)
+            spec, reopened = raise_budget(
+                budgeted(self.spec(calibration_id), meta), state, max_runs
+            )
+            blob = None if reopened is state else state_to_bytes(reopened)
+            if self.store.set_budget(
+                calibration_id, meta.state_version, spec.max_runs, reopened.status, blob
+            ):
+                self.schedule_refit(calibration_id)
+                return self.describe(calibration_id)
+        raise ConflictError("the calibration kept changing while its budget was raised; retry")
 
     def delete(self, calibration_id: str) -> None:
         """Remove a calibration and all its runs."""
@@ -569,4 +612,5 @@ class CalibrationService:
     ) -> tuple[CalibrationSpec, EngineState, list[dict[str, Any]]]:
         """What the HTML report needs: spec, state and runs."""
         meta = self.meta(calibration_id)
-        return self.spec(calibration_id), self.state(meta), self._run_views(calibration_id)
+        spec = budgeted(self.spec(calibration_id), meta)
+        return spec, self.state(meta), self._run_views(calibration_id)

@@ -170,6 +170,12 @@ class Client:
         """Spec, status, run counts and round of one calibration."""
         return self._json("GET", _path(calibration_id))
 
+    def raise_budget(self, calibration_id: str, max_runs: int) -> dict[str, Any]:
+        """Raise the run budget; a calibration the old budget stopped collects again.
+        Returns the calibration as `calibration` does."""
+        body = {"budget": {"max_runs": max_runs}}
+        return self._json("PATCH", _path(calibration_id), json=body)
+
     def delete(self, calibration_id: str) -> None:
         """Delete a calibration with all its runs."""
         self._request("DELETE", _path(calibration_id))

@@ -305,6 +305,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("file", metavar="RUNS", help="runs.csv or runs.json")
     p.set_defaults(handler=_import)
 
+    p = command(
+        "budget",
+        "raise a calibration's run budget",
+        "Allow up to MAX_RUNS runs in all. A calibration that spent its old budget collects "
+        "again from where it stood, with its runs and posterior; start workers again to go on.",
+    )
+    p.add_argument("id", metavar="ID", help="calibration id")
+    p.add_argument("max_runs", metavar="MAX_RUNS", type=int, help="the new budget, in runs")
+    p.set_defaults(handler=_budget)
+
     p = command("delete", "delete a calibration and all its runs")
     p.add_argument("id", metavar="ID", help="calibration id")
     p.set_defaults(handler=_delete)
@@ -450,6 +460,14 @@ def _import(args: argparse.Namespace) -> int:
             raise SettingsError(f"{args.file} holds no finished runs to import")
         answer = client.import_runs(args.id, runs)
     _out(f"imported {answer.get('imported', len(runs))} runs into {args.id}")
+    return EXIT["ok"]
+
+
+def _budget(args: argparse.Namespace) -> int:
+    with _client(args) as client:
+        info = client.raise_budget(args.id, args.max_runs)
+    budget = info.get("spec", {}).get("budget", {}).get("max_runs")
+    _out(f"{args.id}  {info.get('status')}  budget {format_number(budget)} runs")
     return EXIT["ok"]
 
 

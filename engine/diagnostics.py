@@ -18,6 +18,7 @@ __all__ = [
     "kl_tolerance",
     "marginal_kl",
     "parameter_summary",
+    "rounds_to_go",
     "trust_from_error",
     "unmet_conditions",
 ]
@@ -230,6 +231,17 @@ def unmet_conditions(history: Sequence[dict[str, Any]]) -> list[str]:
             "the change"
         )
     return reasons
+
+
+def rounds_to_go(history: Sequence[dict[str, Any]]) -> int:
+    """Fewest further rounds before `converged` can hold: `CONVERGED_ROUNDS` less the latest
+    rounds that each pass every check, and at least one."""
+    passing = 0
+    for entry in reversed(list(history)):
+        if unmet_conditions([entry] * CONVERGED_ROUNDS):
+            break
+        passing += 1
+    return max(1, CONVERGED_ROUNDS - passing)
 
 
 def _kl_shift(kl: float) -> float:

@@ -37,7 +37,8 @@ class SpecError(HoningError, ValueError):
 
 
 class ConflictError(HoningError):
-    """A second, different result for a run that already has one."""
+    """A request that contradicts what is stored: a second, different result for a run that
+    already has one, or a larger budget for a calibration that has finished."""
 
 
 class StateError(HoningError):

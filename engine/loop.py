@@ -15,7 +15,7 @@ import numpy as np
 
 from honing.engine.diagnostics import trust_from_error
 from honing.engine.errors import ConflictError, SpecError
-from honing.engine.rounds import prediction_error, refit, refit_due, start
+from honing.engine.rounds import prediction_error, raise_budget, refit, refit_due, start
 from honing.engine.spec import CalibrationSpec
 from honing.engine.state import EngineState, RunTable
 
@@ -107,6 +107,11 @@ class CalibrationLoop:
         self.finished.append(point_id)
         self._maybe_refit()
         return run.trust
+
+    def raise_budget(self, max_runs: int) -> None:
+        """Allow up to ``max_runs`` runs in all, reopening a calibration the old budget
+        stopped (`honing.engine.rounds.raise_budget`); nothing changes if it raises."""
+        self.spec, self.state = raise_budget(self.spec, self.state, max_runs)
 
     def run(self, simulator: Simulator, workers: int = 1) -> EngineState:
         """Drive the loop to its end with a Python simulator, ``workers`` points at a time."""

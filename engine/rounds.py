@@ -24,6 +24,7 @@ The round, in order:
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from typing import Any
 
@@ -39,9 +40,11 @@ from honing.engine.diagnostics import (
     kl_tolerance,
     marginal_kl,
     parameter_summary,
+    rounds_to_go,
     trust_from_error,
     unmet_conditions,
 )
+from honing.engine.errors import ConflictError, SpecError
 from honing.engine.failures import FailureModel
 from honing.engine.likelihood import log_likelihood, noise_scale_draws, whiten
 from honing.engine.priors import reference_logpdf
@@ -53,7 +56,7 @@ from honing.engine.sampling import (
     n_walkers,
     sample_posterior,
 )
-from honing.engine.spec import CalibrationSpec
+from honing.engine.spec import LIMITS, CalibrationSpec
 from honing.engine.state import EngineState, RunTable
 from honing.engine.surrogate import Frame, Surrogate, fit_surrogate
 
@@ -61,6 +64,7 @@ __all__ = [
     "posterior_samples",
     "prediction_error",
     "proximity_weight",
+    "raise_budget",
     "refit",
     "refit_due",
     "retained_floor",
@@ -127,6 +131,8 @@ PREDICTIVE_DRAWS = 400
 PRIOR_MISS_SHARE = 0.25
 #: Histogram bins for the prior-to-posterior divergence of each marginal.
 KL_BINS = 40
+#: How the warning of a calibration that spent its budget before converging begins.
+_BUDGET_WARNING = "run budget spent before convergence: "
 
 
 def proximity_weight(mean: np.ndarray, cov: np.ndarray, xi: np.ndarray) -> np.ndarray:
@@ -293,6 +299,42 @@ def posterior_samples(
         return names, state.pool
     # Evenly spaced rows: the pool is in chain order, so its first rows are its earliest steps.
     return names, state.pool[np.linspace(0, n - 1, max(0, count)).round().astype(int)]
+
+
+def raise_budget(
+    spec: CalibrationSpec, state: EngineState, max_runs: int
+) -> tuple[CalibrationSpec, EngineState]:
+    """The spec with a larger run budget, and the state open for more runs.
+
+    A calibration the old budget stopped collects again from where it stood: the same
+    posterior, history and proposals (the last round drew a batch even as it stopped), less
+    the warning about the spent budget. A converged or failed calibration is finished and
+    raises `ConflictError`; a budget that is not larger than the current one, or above
+    ``LIMITS["max_runs"]``, raises `SpecError` at ``budget.max_runs``.
+    """
+    if state.status in ("converged", "failed"):
+        raise ConflictError(
+            f"the calibration has {state.status}; a larger budget cannot reopen it "
+            "(create a new calibration and import its runs to refine it)"
+        )
+    limit = LIMITS["max_runs"]
+    if isinstance(max_runs, bool) or not isinstance(max_runs, int):
+        raise SpecError.at(("budget", "max_runs"), "must be a whole number")
+    if not spec.max_runs < max_runs <= limit:
+        raise SpecError.at(
+            ("budget", "max_runs"),
+            f"must be larger than the current budget of {spec.max_runs} runs and at most "
+            f"{limit}, got {max_runs}",
+        )
+    larger = dataclasses.replace(spec, max_runs=max_runs)
+    if state.status != "budget_exhausted":
+        return larger, state
+    diagnostics = dict(state.summary.get("diagnostics", {}))
+    diagnostics["warnings"] = [
+        w for w in diagnostics.get("warnings", []) if not w.startswith(_BUDGET_WARNING)
+    ]
+    summary = {**state.summary, "status": "collecting", "diagnostics": diagnostics}
+    return larger, dataclasses.replace(state, status="collecting", summary=summary)
 
 
 def refit(
@@ -720,21 +762,18 @@ def _prior_warnings(spec: CalibrationSpec, prior_predictive: dict[str, Any]) -> 
 
 
 def _budget_warning(spec: CalibrationSpec, history: list[dict[str, Any]], runs: RunTable) -> str:
-    """Why a calibration that spent its budget had not converged, and how to go on.
-
-    Imported runs count towards a new calibration's budget, its first fit waits for a full
-    initial design, and that fit cannot count towards convergence: the smallest budget that
-    can converge is the runs kept, any shortfall of the initial design, and two batches.
-    """
-    kept = int(np.count_nonzero(~runs.failed))
-    least = kept + max(0, spec.initial_runs - kept) + 2 * spec.batch_size
+    """Why a calibration that spent its budget had not converged, and how to go on: raised
+    (`raise_budget`), the budget must leave a batch for each round the stop rule still needs
+    (`diagnostics.rounds_to_go`)."""
+    to_go = rounds_to_go(history)
+    least = runs.n_runs + to_go * spec.batch_size
+    batches = "one more batch" if to_go == 1 else f"{to_go} more batches"
     return (
-        "run budget spent before convergence: "
+        _BUDGET_WARNING
         + "; ".join(unmet_conditions(history))
-        + ". Treat the posterior as provisional. To go on, create a calibration with the same "
-        f"spec and a budget of at least {least} runs, and import the {kept} successful runs "
-        "into it: they count towards its budget, and it refits on them and then needs at "
-        "least two more batches to converge"
+        + ". Treat the posterior as provisional. To go on, raise the budget to at least "
+        f"{least} runs: the calibration keeps its runs and posterior, and needs at least "
+        f"{batches} to converge"
     )
 
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 from fastapi import APIRouter, Response, status
 
 from honing.api.deps import AdminAccess, AuthorizedCalibration, ServiceDep
-from honing.api.models import CalibrationResponse, CreateResponse, SpecRequest
+from honing.api.models import BudgetRequest, CalibrationResponse, CreateResponse, SpecRequest
 from honing.api.problems import problem_responses
 
 router = APIRouter(prefix="/v1/calibrations", tags=["calibrations"])
@@ -34,6 +34,19 @@ def get_calibration(
 ) -> CalibrationResponse:
     """Spec, status, counts and round."""
     return CalibrationResponse(**service.describe(calibration_id))
+
+
+@router.patch(
+    "/{calibration_id}",
+    response_model=CalibrationResponse,
+    responses=problem_responses(401, 403, 404, 409, 422, 503),
+)
+def raise_budget(
+    body: BudgetRequest, calibration_id: AuthorizedCalibration, service: ServiceDep
+) -> CalibrationResponse:
+    """Raise the run budget; a calibration the old budget stopped collects again from where
+    it stood (409 once converged or failed; 422 unless the budget grows)."""
+    return CalibrationResponse(**service.raise_budget(calibration_id, body.budget.max_runs))
 
 
 @router.delete(

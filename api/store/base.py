@@ -59,6 +59,8 @@ class CalibrationMeta:
     refit_failures: int
     #: A refit job is queued or running (read in the same step as the rest).
     refit_pending: bool
+    #: The run budget when it was raised after creation (`Store.set_budget`); None: the spec's.
+    max_runs: int | None = None
 
 
 @dataclass(frozen=True)
@@ -158,6 +160,18 @@ class Store(Protocol):
     ) -> bool:
         """Replace state and proposal queue if the version is still ``expected_version``."""
 
+    def set_budget(
+        self,
+        calibration_id: str,
+        expected_version: int,
+        max_runs: int,
+        engine_status: str,
+        blob: bytes | None,
+    ) -> bool:
+        """Set the run budget and the engine status, and the state blob unless None, if the
+        version is still ``expected_version``; the version moves on either way, so that a
+        refit started under the old budget cannot write its state."""
+
     # runs
     async def lease_async(
         self,
@@ -169,7 +183,8 @@ class Store(Protocol):
         max_runs: int,
     ) -> LeaseResult:
         """Expire overdue leases, then hand out up to ``count`` points (re-queued first)
-        while the calibration is open: engine status "collecting" and no failure recorded."""
+        while the calibration is open: engine status "collecting" and no failure recorded.
+        ``max_runs`` is the spec's budget; a budget set since (`set_budget`) takes its place."""
 
     def expire(self, calibration_id: str, now: float) -> int:
         """Expire overdue leases; returns how many."""

@@ -106,7 +106,8 @@ return expire_overdue(KEYS[1], KEYS[3], KEYS[2], ARGV[1], ARGV[2])
 #       7... the metadata fields to return
 # Expires overdue leases, then, while the calibration is open (engine_status "collecting", no
 # failed_error), hands out up to count points: re-queued ones first, then the current
-# proposals, never more than max_runs - done - failed - leased. Each new run gets id
+# proposals, never more than max_runs - done - failed - leased (max_runs: the meta field when a
+# budget was set after creation, else ARGV[6]). Each new run gets id
 # "r<seq>", state "leased", epoch 1.
 # Returns {expired, snapshot, rid_1, seq_1, point_1, rid_2, ...} (snapshot: the metadata
 # afterwards, as _META returns it), or {-1} when the calibration is gone.
@@ -118,8 +119,9 @@ _LEASE = (
 local meta = KEYS[1]
 if redis.call('EXISTS', meta) == 0 then return {-1} end
 local expired = expire_overdue(meta, KEYS[4], KEYS[3], ARGV[1], ARGV[2])
-local c = redis.call('HMGET', meta, 'done', 'failed', 'leased', 'engine_status', 'failed_error')
-local room = tonumber(ARGV[6]) - tonumber(c[1]) - tonumber(c[2]) - tonumber(c[3])
+local c = redis.call('HMGET', meta, 'done', 'failed', 'leased', 'engine_status', 'failed_error',
+                     'max_runs')
+local room = tonumber(c[6] or ARGV[6]) - tonumber(c[1]) - tonumber(c[2]) - tonumber(c[3])
 if c[4] ~= 'collecting' or c[5] then room = 0 end
 local n = math.min(tonumber(ARGV[3]), room)
 local out = {expired, false}
@@ -220,6 +222,24 @@ return 1
 """
 )
 
+# KEYS: 1 meta, 2 state
+# ARGV: 1 expected state version, 2 max_runs, 3 engine status, 4 state blob ('' keeps it)
+# Compare-and-swap like _SWAP: sets the budget and status (and the state) and moves the version
+# on, so that a refit begun under the old budget fails its swap and runs again.
+# Returns 1 set, 0 version moved on, -1 no calibration.
+_BUDGET = (
+    _WRITES
+    + """
+local meta = KEYS[1]
+if redis.call('EXISTS', meta) == 0 then return -1 end
+if redis.call('HGET', meta, 'state_version') ~= ARGV[1] then return 0 end
+if ARGV[4] ~= '' then redis.call('SET', KEYS[2], ARGV[4]) end
+redis.call('HINCRBY', meta, 'state_version', 1)
+redis.call('HSET', meta, 'max_runs', ARGV[2], 'engine_status', ARGV[3])
+return 1
+"""
+)
+
 # KEYS: every fixed key of the calibration (CalibrationKeys.fixed(), runs list at 6)
 # ARGV: 1 run key prefix
 # Deletes each run hash listed in the runs list, then the fixed keys. Returns 1 if it existed.
@@ -297,6 +317,7 @@ _META_FIELDS = [
     "leased",
     "failed_error",
     "refit_failures",
+    "max_runs",
 ]
 
 
@@ -318,6 +339,7 @@ def _meta_from(calibration_id: str, snapshot: list[Any], queued: bool) -> Calibr
         failed_error=m.get("failed_error"),
         refit_failures=int(str(m.get("refit_failures") or 0)),
         refit_pending=queued or bool(locked),
+        max_runs=int(str(m["max_runs"])) if m.get("max_runs") else None,
     )
 
 
@@ -418,6 +440,7 @@ class RedisStore:
         self._lease = self._r.register_script(_LEASE)
         self._finish = self._r.register_script(_FINISH)
         self._import = self._r.register_script(_IMPORT)
+        self._budget = self._r.register_script(_BUDGET)
         self._swap = self._r.register_script(_SWAP)
         self._delete = self._r.register_script(_DELETE)
         self._refit_failure = self._r.register_script(_REFIT_FAILURE)
@@ -652,6 +675,20 @@ class RedisStore:
         args = [str(expected_version), blob, str(round_), engine_status, *proposals]
         with self._guard():
             done, _ = self._pipelined(self._swap, keys, args, durable=True)
+        return int(done) == 1
+
+    def set_budget(
+        self,
+        calibration_id: str,
+        expected_version: int,
+        max_runs: int,
+        engine_status: str,
+        blob: bytes | None,
+    ) -> bool:
+        k = CalibrationKeys(calibration_id)
+        args = [str(expected_version), str(max_runs), engine_status, blob or b""]
+        with self._guard():
+            done, _ = self._pipelined(self._budget, [k.meta, k.state], args, durable=True)
         return int(done) == 1
 
     # runs

@@ -46,7 +46,8 @@ CREATE TABLE IF NOT EXISTS calibrations (
     failed INTEGER NOT NULL DEFAULT 0,
     leased INTEGER NOT NULL DEFAULT 0,
     failed_error TEXT,
-    refit_failures INTEGER NOT NULL DEFAULT 0
+    refit_failures INTEGER NOT NULL DEFAULT 0,
+    max_runs INTEGER
 );
 -- Points to hand out; queue 0 = re-queued points of expired runs (first), 1 = proposals.
 CREATE TABLE IF NOT EXISTS queue (
@@ -120,6 +121,14 @@ class SqliteStore:
         # than deadlocking.
         self._writer = threading.RLock()
         self._conn().executescript(_SCHEMA)
+        self._add_missing_columns()
+
+    def _add_missing_columns(self) -> None:
+        """Columns added since a file was created: a budget raised after creation."""
+        with self._write() as db:
+            columns = {row[1] for row in db.execute("PRAGMA table_info(calibrations)")}
+            if "max_runs" not in columns:
+                db.execute("ALTER TABLE calibrations ADD COLUMN max_runs INTEGER")
 
     def _conn(self) -> sqlite3.Connection:
         conn = getattr(self._local, "conn", None)
@@ -236,7 +245,7 @@ class SqliteStore:
         # Inside the caller's transaction, so the counters, queue and refit job agree.
         row = db.execute(
             "SELECT id, token_hash, created_at, state_version, round, engine_status, "
-            "done, failed, leased, failed_error, refit_failures FROM calibrations "
+            "done, failed, leased, failed_error, refit_failures, max_runs FROM calibrations "
             "WHERE id = ?",
             (calibration_id,),
         ).fetchone()
@@ -264,6 +273,7 @@ class SqliteStore:
             failed_error=row["failed_error"],
             refit_failures=row["refit_failures"],
             refit_pending=bool(pending),
+            max_runs=row["max_runs"],
         )
 
     def get_spec(self, calibration_id: str) -> str | None:
@@ -286,6 +296,23 @@ class SqliteStore:
                 "SELECT state_version, state FROM calibrations WHERE id = ?", (calibration_id,)
             ).fetchone()
         return None if row is None else (int(row[0]), bytes(row[1]))
+
+    def set_budget(
+        self,
+        calibration_id: str,
+        expected_version: int,
+        max_runs: int,
+        engine_status: str,
+        blob: bytes | None,
+    ) -> bool:
+        with self._write() as db:
+            cur = db.execute(
+                "UPDATE calibrations SET max_runs = ?, engine_status = ?, "
+                "state = COALESCE(?, state), state_version = state_version + 1 "
+                "WHERE id = ? AND state_version = ?",
+                (max_runs, engine_status, blob, calibration_id, expected_version),
+            )
+            return cur.rowcount == 1
 
     def swap_state(
         self,
@@ -352,14 +379,15 @@ class SqliteStore:
         expires = now + lease_seconds
         with self._write() as db:
             row = db.execute(
-                "SELECT seq, done, failed, engine_status, failed_error FROM calibrations "
-                "WHERE id = ?",
+                "SELECT seq, done, failed, engine_status, failed_error, max_runs "
+                "FROM calibrations WHERE id = ?",
                 (calibration_id,),
             ).fetchone()
             if row is None:
                 return LeaseResult([], 0, None)
             expired = self._expire_overdue(db, calibration_id, now)
-            seq, done, failed, engine_status, failed_error = row
+            seq, done, failed, engine_status, failed_error, raised = row
+            max_runs = raised if raised is not None else max_runs
             (leased,) = db.execute(
                 "SELECT leased FROM calibrations WHERE id = ?", (calibration_id,)
             ).fetchone()

@@ -101,6 +101,9 @@ class AppClient:
     def put(self, url: str, **kwargs: Any) -> httpx.Response:
         return self.request("PUT", url, **kwargs)
 
+    def patch(self, url: str, **kwargs: Any) -> httpx.Response:
+        return self.request("PATCH", url, **kwargs)
+
     def delete(self, url: str, **kwargs: Any) -> httpx.Response:
         return self.request("DELETE", url, **kwargs)
 

@@ -1,6 +1,8 @@
 import csv
 import io
 
+import httpx
+import pytest
 from helpers_api import SPEC, AppClient, Calibration, create, lease, report, simulate
 
 from honing.api.refitter import Refitter
@@ -213,28 +215,85 @@ def _drive(client: AppClient, cal: Calibration, refitter: Refitter) -> dict:
     raise AssertionError("the calibration did not stop")
 
 
+def _budget(client: AppClient, cal: Calibration, max_runs: object) -> httpx.Response:
+    return client.patch(cal.url, json={"budget": {"max_runs": max_runs}}, headers=cal.headers)
+
+
 def test_a_spent_budget_says_how_to_go_on_and_that_way_works(
     client: AppClient, refitter: Refitter
 ) -> None:
-    # 12 runs: the initial design and one batch, so round 2 spends the budget. The warning
-    # names the smallest budget a new calibration importing the runs needs; with it, the
-    # new one gets its first fit and two batches after it, enough for the stop rule to hold
-    # when each refit keeps up with the workers.
-    short = create(client, {**SPEC, "budget": {"max_runs": 12}})
-    assert _drive(client, short, refitter)["status"] == "budget_exhausted"
-    posterior = client.get(f"{short.url}/posterior", headers=short.headers).json()
-    (warning,) = [w for w in posterior["diagnostics"]["warnings"] if "budget spent" in w]
-    # 12 successful runs; the initial design (8) is covered; two batches of 4.
-    assert "a budget of at least 20 runs, and import the 12 successful runs" in warning
-    runs = client.get(f"{short.url}/runs?state=done", headers=short.headers).json()["runs"]
-    archive = [{"parameters": r["parameters"], "outputs": r["outputs"]} for r in runs]
-    again = create(client, {**SPEC, "budget": {"max_runs": 20}})
-    response = client.post(
-        f"{again.url}/runs/import", json={"runs": archive}, headers=again.headers
-    )
-    assert response.json() == {"imported": 12}
-    refitter.step()  # the first fit, on the imported runs
-    final = _drive(client, again, refitter)
-    assert final["runs_completed"] == 20
-    history = client.get(f"{again.url}/posterior", headers=again.headers).json()
-    assert history["round"] == 3  # a first fit, then one round per batch: room to converge
+    # 12 runs: the initial design and one batch, so round 2 spends the budget. Round 2
+    # passed every check, so the warning asks for one more batch; raised to that, the
+    # calibration collects again from where it stood and has its third round.
+    cal = create(client, {**SPEC, "budget": {"max_runs": 12}})
+    assert _drive(client, cal, refitter)["status"] == "budget_exhausted"
+    before = client.get(f"{cal.url}/posterior", headers=cal.headers).json()
+    (warning,) = [w for w in before["diagnostics"]["warnings"] if "budget spent" in w]
+    assert "raise the budget to at least 16 runs" in warning  # 12 spent, a batch of 4
+    assert "needs at least one more batch" in warning
+    response = _budget(client, cal, 16)
+    assert response.status_code == 200, response.text
+    info = response.json()
+    assert info["status"] == "collecting" and info["spec"]["budget"] == {"max_runs": 16}
+    after = client.get(f"{cal.url}/posterior", headers=cal.headers).json()
+    assert after["round"] == 2 and after["parameters"] == before["parameters"]
+    assert not any("budget spent" in w for w in after["diagnostics"]["warnings"])
+    final = _drive(client, cal, refitter)
+    assert final["runs_completed"] == 16
+    assert client.get(f"{cal.url}/posterior", headers=cal.headers).json()["round"] == 3
+    assert final["status"] in ("converged", "budget_exhausted")
+
+
+@pytest.mark.parametrize("max_runs", [40, 12, 100_001, "60", 60.0, None])
+def test_a_budget_that_does_not_grow_is_refused_and_nothing_changes(
+    client: AppClient, calibration: Calibration, max_runs: object
+) -> None:
+    before = client.get(calibration.url, headers=calibration.headers).json()
+    response = _budget(client, calibration, max_runs)
+    assert response.status_code == 422, response.text
+    assert "max_runs" in response.text
+    assert client.get(calibration.url, headers=calibration.headers).json() == before
+
+
+def test_only_the_budget_can_change(client: AppClient, calibration: Calibration) -> None:
+    body = {"budget": {"max_runs": 80}, "seed": 3}
+    response = client.patch(calibration.url, json=body, headers=calibration.headers)
+    assert response.status_code == 422 and "seed" in response.text
+
+
+def test_a_raised_budget_is_kept_by_an_open_calibration_and_leases_follow_it(
+    client: AppClient, refitter: Refitter
+) -> None:
+    cal = create(client, {**SPEC, "budget": {"max_runs": 9}})
+    # Round 0 proposes the initial design and a batch of spares, 12 points.
+    assert len(lease(client, cal, 100)) == 9  # as far as the budget goes
+    assert _budget(client, cal, 11).json()["status"] == "collecting"
+    assert len(lease(client, cal, 100)) == 2  # 3 points left, 2 runs of budget
+
+
+def test_a_refit_begun_under_the_old_budget_does_not_land(
+    client: AppClient, refitter: Refitter
+) -> None:
+    # The budget moves the state's version on: a refit that read the old budget fails its
+    # swap, and runs again under the new one.
+    cal = create(client, {**SPEC, "budget": {"max_runs": 12}})
+    for run in lease(client, cal, 8):
+        report(client, cal, run)
+    assert refitter.step() == ["written"]
+    for run in lease(client, cal, 4):
+        report(client, cal, run)  # the 12th result: the next refit would spend the budget
+    service = client.app.state.service  # type: ignore[attr-defined]
+    meta = service.meta(cal.id)
+    assert _budget(client, cal, 30).status_code == 200
+    stale = service.store.swap_state(cal.id, meta.state_version, b"x", 9, "budget_exhausted", [])
+    assert stale is False
+    assert refitter.step() == ["written"]
+    assert client.get(cal.url, headers=cal.headers).json()["status"] in ("collecting", "fitting")
+
+
+def test_a_converged_calibration_keeps_its_budget(client: AppClient, refitter: Refitter) -> None:
+    cal = create(client, {**SPEC, "budget": {"max_runs": 200}})
+    assert _drive(client, cal, refitter)["status"] == "converged"
+    response = _budget(client, cal, 300)
+    assert response.status_code == 409 and "converged" in response.text
+    assert client.get(cal.url, headers=cal.headers).json()["spec"]["budget"]["max_runs"] == 200

@@ -16,6 +16,8 @@ CONTRACT = {
     ("post", "/v1/calibrations"): "201",
     ("get", "/v1/calibrations/{calibration_id}"): "200",
     ("delete", "/v1/calibrations/{calibration_id}"): "204",
+    # An extension of the contract: raising the run budget.
+    ("patch", "/v1/calibrations/{calibration_id}"): "200",
     ("post", "/v1/calibrations/{calibration_id}/runs"): "200",
     ("put", "/v1/calibrations/{calibration_id}/runs/{run_id}"): "200",
     ("post", "/v1/calibrations/{calibration_id}/runs/import"): "200",

@@ -17,7 +17,7 @@ def test_unknown_route_is_a_404_problem(client: AppClient) -> None:
 
 
 def test_wrong_method_is_a_405_problem(client: AppClient, calibration: Calibration) -> None:
-    response = client.request("PATCH", calibration.url, headers=calibration.headers)
+    response = client.request("PUT", calibration.url, headers=calibration.headers)
     assert_problem(response, 405)
     assert "GET" in response.headers["allow"]
 

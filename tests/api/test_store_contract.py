@@ -185,6 +185,46 @@ def test_swap_state_is_compare_and_swap(store: Store, steps: Steps) -> None:
     assert not store.swap_state("missing", 1, b"x", 1, "collecting", [])
 
 
+def test_set_budget_is_compare_and_swap_and_leases_follow_it(store: Store, steps: Steps) -> None:
+    make(store, proposals=10)
+    meta = store.get_meta("c1")
+    assert meta is not None and meta.max_runs is None  # the spec's budget holds
+    assert len(steps.lease("c1", 10, "w", 0.0, 60.0, 2).runs) == 2
+    # The status and the budget change, the state only when one is given, and the version
+    # moves on either way.
+    assert store.set_budget("c1", 1, 5, "collecting", None)
+    assert store.load_state("c1") == (2, b"\x00state\xff")
+    assert not store.set_budget("c1", 1, 9, "collecting", b"stale")
+    assert not store.swap_state("c1", 1, b"stale", 1, "budget_exhausted", [])
+    meta = store.get_meta("c1")
+    assert meta is not None and (meta.max_runs, meta.state_version) == (5, 2)
+    # The stored budget wins over the one the caller passes.
+    assert len(steps.lease("c1", 10, "w", 1.0, 60.0, 2).runs) == 3
+    assert store.set_budget("c1", 2, 6, "budget_exhausted", b"closed")
+    assert store.load_state("c1") == (3, b"closed")
+    assert steps.lease("c1", 10, "w", 2.0, 60.0, 100).runs == []  # closed
+    assert not store.set_budget("missing", 1, 5, "collecting", None)
+
+
+def test_an_sqlite_file_from_before_budgets_gains_the_column(tmp_path: Any) -> None:
+    path = tmp_path / "old.db"
+    old_schema = sqlite_store._SCHEMA.replace(",\n    max_runs INTEGER\n", "\n")
+    assert "max_runs" not in old_schema
+    with sqlite3.connect(path) as db:
+        db.executescript(old_schema)
+    store = open_store(f"sqlite:///{path}")
+    try:
+        make(store)
+        meta = store.get_meta("c1")
+        assert meta is not None and meta.max_runs is None
+        assert store.set_budget("c1", 1, 7, "collecting", None)
+        meta = store.get_meta("c1")
+        assert meta is not None and meta.max_runs == 7
+    finally:
+        store.close()
+    open_store(f"sqlite:///{path}").close()  # a second open finds the column there
+
+
 def test_delete_removes_everything(store: Store, steps: Steps) -> None:
     make(store)
     make(store, "c2")

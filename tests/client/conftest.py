@@ -75,7 +75,7 @@ def fake_server() -> Iterator[Canned]:
             self.end_headers()
             self.wfile.write(data)
 
-        do_GET = do_POST = do_PUT = do_DELETE = _answer
+        do_GET = do_POST = do_PUT = do_PATCH = do_DELETE = _answer
 
         def log_message(self, format: str, *args: Any) -> None:
             pass

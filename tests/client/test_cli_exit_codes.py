@@ -23,7 +23,8 @@ def calibration(status: str) -> dict[str, Any]:
 def test_help_lists_every_command_and_exit_code(capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["--help"]) == 0
     text = capsys.readouterr().out
-    for name in ("serve", "demo", "create", "worker", "status", "posterior", "samples", "runs"):
+    commands = ("serve", "demo", "create", "worker", "status", "posterior", "samples", "runs")
+    for name in (*commands, "budget"):
         assert f"    {name}" in text
     for code in ("0 ", "1 ", "2 ", "3 ", "4 ", "5 ", "130", "143"):
         assert f"\n  {code}" in text
@@ -111,6 +112,25 @@ def test_posterior_lists_the_engine_warnings_before_the_caution(fake_server: Any
         "warning: prior check",
     ]
     assert "independent measurements" in lines[-1]
+
+
+def test_budget_sends_the_new_budget_and_prints_the_status(fake_server: Any, cli: Any) -> None:
+    answer = {**calibration("collecting"), "spec": {"budget": {"max_runs": 600}}}
+    fake_server.on("PATCH", CAL, answer)
+    result = cli("budget", "c1", "600", url=fake_server.url, token="t")
+    assert result.returncode == 0, result.stderr
+    assert result.stdout == "c1  collecting  budget 600 runs\n"
+    assert fake_server.bodies("PATCH", CAL) == [{"budget": {"max_runs": 600}}]
+
+
+def test_budget_refused_is_one_line_and_exit_1(
+    fake_server: Any, cli: Any, one_line_error: Any
+) -> None:
+    problem = {"type": "about:blank", "title": "Conflict", "status": 409, "detail": "converged"}
+    fake_server.on("PATCH", CAL, problem, status=409)
+    result = cli("budget", "c1", "600", url=fake_server.url, token="t")
+    assert result.returncode == 1
+    one_line_error(result, "Conflict (409)", "converged")
 
 
 def test_status_wait_times_out_with_4(fake_server: Any, cli: Any) -> None:

@@ -165,3 +165,30 @@ def test_errors_from_the_live_server_are_one_line(
     result = cli("status", cid, url=live_server, token=token)
     assert result.returncode == 1
     one_line_error(result, "(404)")
+
+
+def test_a_spent_budget_is_raised_and_the_worker_goes_on(
+    live_server: str, cli: Any, create: Any, simulator: list[str]
+) -> None:
+    # 8 runs cannot converge (the first fit waits for 6, and the rule needs two rounds after
+    # it): the budget runs out, status says by how much to raise it, and once raised the
+    # same calibration takes more runs.
+    cid, token = create("raise", max_runs=8)
+    first = cli("worker", cid, "-q", "--", *simulator, url=live_server, token=token)
+    assert first.returncode == 3, first.stderr
+    status = cli("status", cid, url=live_server, token=token)
+    assert status.returncode == 3
+    hint = status.stderr.split("raise the budget to at least ")[1]
+    least = int(hint.split()[0])
+    assert least > 8
+    raised = cli("budget", cid, str(least), url=live_server, token=token)
+    assert raised.returncode == 0, raised.stderr
+    assert raised.stdout == f"{cid}  collecting  budget {least} runs\n"
+    again = cli("worker", cid, "-q", "--", *simulator, url=live_server, token=token)
+    assert again.returncode in (0, 3), again.stderr
+    info = json.loads(cli("status", cid, "--json", url=live_server, token=token).stdout)
+    assert 8 < info["runs_completed"] <= least
+    # The same budget again is no raise; a converged calibration cannot be reopened.
+    refused = cli("budget", cid, str(least), url=live_server, token=token)
+    reason = "max_runs" if again.returncode == 3 else "has converged"
+    assert refused.returncode == 1 and reason in refused.stderr, refused.stderr

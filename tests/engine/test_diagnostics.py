@@ -12,6 +12,7 @@ from honing.engine.diagnostics import (
     fit_trust,
     gaussian_kl,
     kl_tolerance,
+    rounds_to_go,
     trust_from_error,
     unmet_conditions,
 )
@@ -202,3 +203,19 @@ def test_unmet_conditions_report_the_worst_round():
     assert len(reasons) == 2
     assert "new in round 1 differed from the surrogate's predictions by 0.9 noise" in reasons[0]
     assert "moved in round 2: by 0.6 nats" in reasons[1]
+
+
+@pytest.mark.parametrize(
+    ("history", "expected"),
+    [
+        ([], CONVERGED_ROUNDS),
+        ([_round()], CONVERGED_ROUNDS - 1),
+        ([_round(), _round(posterior_change=0.2)], CONVERGED_ROUNDS),
+        ([_round(validation_error=None), _round()], CONVERGED_ROUNDS - 1),
+        ([_round()] * CONVERGED_ROUNDS, 1),  # converged already: a round is a round
+    ],
+)
+def test_rounds_to_go_counts_the_passing_rounds_at_the_end(history, expected):
+    # Each passing round at the end of the history is one the stop rule need not wait for.
+    assert CONVERGED_ROUNDS == 2  # the cases above are written for the rule as it stands
+    assert rounds_to_go(history) == expected

@@ -10,7 +10,7 @@ from scipy.spatial.distance import mahalanobis
 
 from honing.engine import rounds
 from honing.engine.diagnostics import VALIDATION_TOLERANCE, gaussian_kl, kl_tolerance
-from honing.engine.errors import ConflictError
+from honing.engine.errors import ConflictError, SpecError
 from honing.engine.loop import CalibrationLoop
 from honing.engine.rounds import (
     FINAL_ESS,
@@ -324,13 +324,60 @@ def test_a_budget_spent_before_convergence_is_explained():
     (budget,) = [w for w in warnings if w.startswith("run budget spent before convergence")]
     assert "round 1 had no new runs that an earlier surrogate had predicted" in budget
     assert "round 1 had no earlier posterior to compare with" in budget
-    # All 15 runs succeeded: a new calibration that imports them needs room for two batches.
-    assert "a budget of at least 25 runs, and import the 15 successful runs" in budget
+    # Round 2 passed every check, so one more passing round would do: one batch of 5.
+    assert "raise the budget to at least 20 runs" in budget and "one more batch" in budget
     assert "round 2" not in budget  # its surrogate validated and its change was measured
     roomy = CalibrationLoop(spec)
     roomy.run(sim)
     assert roomy.status == "converged"
     assert not any("run budget" in w for w in roomy.state.summary["diagnostics"]["warnings"])
+
+
+def test_a_raised_budget_goes_on_from_where_the_old_one_stopped():
+    spec, sim = _small_loop()
+    loop = CalibrationLoop(
+        CalibrationSpec.from_dict({**spec.to_dict(), "budget": {"max_runs": 15}})
+    )
+    loop.run(sim)
+    assert loop.status == "budget_exhausted" and loop.ask(5) == []
+    before = loop.state
+    loop.raise_budget(25)
+    assert loop.spec.max_runs == 25 and loop.status == "collecting"
+    assert loop.state.summary["status"] == "collecting"
+    assert not any("budget" in w for w in loop.state.summary["diagnostics"]["warnings"])
+    # The same posterior and proposals: the next runs are the batch the last round drew.
+    np.testing.assert_array_equal(loop.state.pool, before.pool)
+    batch = loop.ask(5)
+    np.testing.assert_array_equal([p.theta for p in batch], before.proposals[:5])
+    for p in batch:
+        loop.tell(p.point_id, outputs=sim(spec.parameters_dict(p.theta)))
+    loop.run(sim)
+    assert loop.state.round >= 3 and len(loop.finished) <= 25
+    assert loop.state.history[:2] == before.history
+
+
+@pytest.mark.parametrize("max_runs", [15, 10, 100_001, 20.5, True])
+def test_a_budget_that_is_not_larger_is_refused_and_nothing_changes(max_runs):
+    spec, sim = _small_loop()
+    loop = CalibrationLoop(
+        CalibrationSpec.from_dict({**spec.to_dict(), "budget": {"max_runs": 15}})
+    )
+    loop.run(sim)
+    state = loop.state
+    with pytest.raises(SpecError) as caught:
+        loop.raise_budget(max_runs)
+    assert caught.value.errors[0]["loc"] == ["budget", "max_runs"]
+    assert loop.state is state and loop.spec.max_runs == 15
+
+
+def test_a_converged_calibration_cannot_be_reopened():
+    spec, sim = _small_loop()
+    loop = CalibrationLoop(spec)
+    loop.run(sim)
+    assert loop.status == "converged"
+    with pytest.raises(ConflictError, match="has converged"):
+        loop.raise_budget(100)
+    assert loop.spec.max_runs == spec.max_runs
 
 
 def test_a_budget_spent_on_failed_runs_is_explained():
@@ -346,8 +393,7 @@ def test_a_budget_spent_on_failed_runs_is_explained():
     warnings = loop.state.summary["diagnostics"]["warnings"]
     assert warnings[0].startswith("fewer than two successful runs")
     assert warnings[1].startswith("run budget spent before convergence: only 0 round(s) fitted")
-    # Nothing to import: a whole initial design (10) and two batches (2 x 5) are needed.
-    assert "a budget of at least 20 runs, and import the 0 successful runs" in warnings[1]
+    assert "raise the budget to at least 22 runs" in warnings[1]  # 12 spent, two batches of 5
 
 
 def test_rounds_whose_chain_stopped_at_its_cap_never_converge(monkeypatch):

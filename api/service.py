@@ -407,21 +407,24 @@ class CalibrationService:
         """Allow up to ``max_runs`` runs in all; a calibration the old budget stopped collects
         again from where it stood (`honing.engine.rounds.raise_budget`). Returns `describe`.
 
-        One compare-and-swap on the state version: a refit that began under the old budget
-        fails its swap and runs again under the new one.
+        One compare-and-swap on the state version, refused by the store once the calibration
+        has failed: a refit that began under the old budget fails its swap and runs again
+        under the new one. The current budget again answers as a success and changes nothing.
         """
         for _ in range(_BUDGET_ATTEMPTS):
             meta = self.meta(calibration_id)
             if meta.failed_error:
                 raise ConflictError("the calibration has failed; a larger budget cannot reopen it")
             state = self.state(meta)
-            spec, reopened = raise_budget(
-                budgeted(self.spec(calibration_id), meta), state, max_runs
-            )
+            current = budgeted(self.spec(calibration_id), meta)
+            spent = meta.done + meta.failed + meta.leased
+            spec, reopened = raise_budget(current, state, max_runs, spent)
             blob = None if reopened is state else state_to_bytes(reopened)
-            if self.store.set_budget(
+            if spec is current or self.store.set_budget(
                 calibration_id, meta.state_version, spec.max_runs, reopened.status, blob
             ):
+                # Also after a repeat of a request whose answer was lost: the refit it may
+                # have been unable to queue is queued now.
                 self.schedule_refit(calibration_id)
                 return self.describe(calibration_id)
         raise ConflictError("the calibration kept changing while its budget was raised; retry")

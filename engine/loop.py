@@ -110,8 +110,9 @@ class CalibrationLoop:
 
     def raise_budget(self, max_runs: int) -> None:
         """Allow up to ``max_runs`` runs in all, reopening a calibration the old budget
-        stopped (`honing.engine.rounds.raise_budget`); nothing changes if it raises."""
-        self.spec, self.state = raise_budget(self.spec, self.state, max_runs)
+        stopped (`honing.engine.rounds.raise_budget`; every point handed out counts as
+        spent); nothing changes if it raises."""
+        self.spec, self.state = raise_budget(self.spec, self.state, max_runs, len(self.proposals))
 
     def run(self, simulator: Simulator, workers: int = 1) -> EngineState:
         """Drive the loop to its end with a Python simulator, ``workers`` points at a time."""

@@ -302,29 +302,34 @@ def posterior_samples(
 
 
 def raise_budget(
-    spec: CalibrationSpec, state: EngineState, max_runs: int
+    spec: CalibrationSpec, state: EngineState, max_runs: int, spent: int
 ) -> tuple[CalibrationSpec, EngineState]:
     """The spec with a larger run budget, and the state open for more runs.
 
     A calibration the old budget stopped collects again from where it stood: the same
     posterior, history and proposals (the last round drew a batch even as it stopped), less
-    the warning about the spent budget. A converged or failed calibration is finished and
-    raises `ConflictError`; a budget that is not larger than the current one, or above
-    ``LIMITS["max_runs"]``, raises `SpecError` at ``budget.max_runs``.
+    the warning about the spent budget. The current budget again changes nothing, so a
+    repeated request is harmless. A converged or failed calibration is finished and raises
+    `ConflictError`; a budget that does not leave room beyond the ``spent`` runs (finished
+    or out, imported ones included), or is above ``LIMITS["max_runs"]``, raises `SpecError`
+    at ``budget.max_runs``.
     """
+    if isinstance(max_runs, bool) or not isinstance(max_runs, int):
+        raise SpecError.at(("budget", "max_runs"), "must be a whole number")
+    if max_runs == spec.max_runs:
+        return spec, state
     if state.status in ("converged", "failed"):
         raise ConflictError(
             f"the calibration has {state.status}; a larger budget cannot reopen it "
             "(create a new calibration and import its runs to refine it)"
         )
     limit = LIMITS["max_runs"]
-    if isinstance(max_runs, bool) or not isinstance(max_runs, int):
-        raise SpecError.at(("budget", "max_runs"), "must be a whole number")
-    if not spec.max_runs < max_runs <= limit:
+    floor = max(spec.max_runs, spent)
+    if not floor < max_runs <= limit:
         raise SpecError.at(
             ("budget", "max_runs"),
-            f"must be larger than the current budget of {spec.max_runs} runs and at most "
-            f"{limit}, got {max_runs}",
+            f"must be larger than the current budget of {spec.max_runs} runs and than the "
+            f"{spent} runs spent or out, and at most {limit}, got {max_runs}",
         )
     larger = dataclasses.replace(spec, max_runs=max_runs)
     if state.status != "budget_exhausted":
@@ -736,7 +741,11 @@ def _prior_predictive(
 ) -> dict[str, Any]:
     """95% band of a new measurement under the prior, from the initial design's runs, and the
     count of data points outside it per channel."""
+    # The initial design's successful runs; when too few of them succeeded, the earliest
+    # successful runs (a fit needs two, so there are at least two).
     first = runs.outputs[: spec.initial_runs][~runs.failed[: spec.initial_runs]]
+    if first.shape[0] < 2:
+        first = runs.outputs[~runs.failed][: spec.initial_runs]
     sim = whiten(spec, first).T
     measured = sim + rng.standard_normal(sim.shape[::-1]).T
     bands = _bands(spec, sim, measured)
@@ -762,18 +771,24 @@ def _prior_warnings(spec: CalibrationSpec, prior_predictive: dict[str, Any]) -> 
 
 
 def _budget_warning(spec: CalibrationSpec, history: list[dict[str, Any]], runs: RunTable) -> str:
-    """Why a calibration that spent its budget had not converged, and how to go on: raised
-    (`raise_budget`), the budget must leave a batch for each round the stop rule still needs
-    (`diagnostics.rounds_to_go`)."""
+    """Why a calibration that spent its budget had not converged, and how to go on.
+
+    Raised (`raise_budget`), the budget should leave a batch for each round the stop rule
+    still needs (`diagnostics.rounds_to_go`), and a whole initial design first when nothing
+    has been fitted yet: that first fit waits for one, and cannot count.
+    """
     to_go = rounds_to_go(history)
-    least = runs.n_runs + to_go * spec.batch_size
-    batches = "one more batch" if to_go == 1 else f"{to_go} more batches"
+    least = runs.n_runs + (0 if history else spec.initial_runs) + to_go * spec.batch_size
+    room = (
+        "a batch for the round the stop rule still needs if it passes"
+        if to_go == 1
+        else f"a batch for each of the {to_go} rounds the stop rule still needs if they pass"
+    )
     return (
         _BUDGET_WARNING
         + "; ".join(unmet_conditions(history))
         + ". Treat the posterior as provisional. To go on, raise the budget to at least "
-        f"{least} runs: the calibration keeps its runs and posterior, and needs at least "
-        f"{batches} to converge"
+        f"{least} runs, {room}: the calibration keeps its runs and posterior"
     )
 
 

@@ -169,8 +169,8 @@ class Store(Protocol):
         blob: bytes | None,
     ) -> bool:
         """Set the run budget and the engine status, and the state blob unless None, if the
-        version is still ``expected_version``; the version moves on either way, so that a
-        refit started under the old budget cannot write its state."""
+        version is still ``expected_version`` and no failure is recorded; the version moves on
+        either way, so that a refit started under the old budget cannot write its state."""
 
     # runs
     async def lease_async(

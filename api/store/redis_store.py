@@ -225,14 +225,15 @@ return 1
 # KEYS: 1 meta, 2 state
 # ARGV: 1 expected state version, 2 max_runs, 3 engine status, 4 state blob ('' keeps it)
 # Compare-and-swap like _SWAP: sets the budget and status (and the state) and moves the version
-# on, so that a refit begun under the old budget fails its swap and runs again.
-# Returns 1 set, 0 version moved on, -1 no calibration.
+# on, so that a refit begun under the old budget fails its swap and runs again; refused once a
+# failure is recorded. Returns 1 set, 0 version moved on or failed, -1 no calibration.
 _BUDGET = (
     _WRITES
     + """
 local meta = KEYS[1]
 if redis.call('EXISTS', meta) == 0 then return -1 end
 if redis.call('HGET', meta, 'state_version') ~= ARGV[1] then return 0 end
+if redis.call('HEXISTS', meta, 'failed_error') == 1 then return 0 end
 if ARGV[4] ~= '' then redis.call('SET', KEYS[2], ARGV[4]) end
 redis.call('HINCRBY', meta, 'state_version', 1)
 redis.call('HSET', meta, 'max_runs', ARGV[2], 'engine_status', ARGV[3])

@@ -309,7 +309,7 @@ class SqliteStore:
             cur = db.execute(
                 "UPDATE calibrations SET max_runs = ?, engine_status = ?, "
                 "state = COALESCE(?, state), state_version = state_version + 1 "
-                "WHERE id = ? AND state_version = ?",
+                "WHERE id = ? AND state_version = ? AND failed_error IS NULL",
                 (max_runs, engine_status, blob, calibration_id, expected_version),
             )
             return cur.rowcount == 1

@@ -230,7 +230,7 @@ def test_a_spent_budget_says_how_to_go_on_and_that_way_works(
     before = client.get(f"{cal.url}/posterior", headers=cal.headers).json()
     (warning,) = [w for w in before["diagnostics"]["warnings"] if "budget spent" in w]
     assert "raise the budget to at least 16 runs" in warning  # 12 spent, a batch of 4
-    assert "needs at least one more batch" in warning
+    assert "16 runs, a batch for the round the stop rule still needs if it passes" in warning
     response = _budget(client, cal, 16)
     assert response.status_code == 200, response.text
     info = response.json()
@@ -244,7 +244,7 @@ def test_a_spent_budget_says_how_to_go_on_and_that_way_works(
     assert final["status"] in ("converged", "budget_exhausted")
 
 
-@pytest.mark.parametrize("max_runs", [40, 12, 100_001, "60", 60.0, None])
+@pytest.mark.parametrize("max_runs", [39, 12, 100_001, "60", 60.0, None])
 def test_a_budget_that_does_not_grow_is_refused_and_nothing_changes(
     client: AppClient, calibration: Calibration, max_runs: object
 ) -> None:
@@ -253,6 +253,44 @@ def test_a_budget_that_does_not_grow_is_refused_and_nothing_changes(
     assert response.status_code == 422, response.text
     assert "max_runs" in response.text
     assert client.get(calibration.url, headers=calibration.headers).json() == before
+
+
+def test_the_current_budget_again_is_a_harmless_success(
+    client: AppClient, calibration: Calibration
+) -> None:
+    before = client.get(calibration.url, headers=calibration.headers).json()
+    response = _budget(client, calibration, SPEC["budget"]["max_runs"])
+    assert response.status_code == 200 and response.json() == before
+
+
+def test_a_budget_below_the_runs_already_imported_is_refused(
+    client: AppClient, refitter: Refitter
+) -> None:
+    # Imported runs count towards the budget: 20 of them against a budget of 12. A budget
+    # of 15 would reopen the calibration with no room for a single run.
+    cal = create(client, {**SPEC, "budget": {"max_runs": 12}})
+    archive = [
+        {"parameters": p, "outputs": simulate(p)}
+        for p in ({"slope": 0.1 * i, "offset": 0.02 * i - 0.2} for i in range(20))
+    ]
+    client.post(f"{cal.url}/runs/import", json={"runs": archive}, headers=cal.headers)
+    assert refitter.step() == ["written"]
+    assert client.get(cal.url, headers=cal.headers).json()["status"] == "budget_exhausted"
+    response = _budget(client, cal, 15)
+    assert response.status_code == 422 and "20 runs spent or out" in response.text
+    assert _budget(client, cal, 24).json()["status"] == "collecting"
+    assert len(lease(client, cal, 100)) == 4
+
+
+def test_a_failed_calibration_cannot_be_reopened(
+    client: AppClient, calibration: Calibration
+) -> None:
+    store = client.app.state.store  # type: ignore[attr-defined]
+    assert store.record_refit_failure(calibration.id, "refit failed: boom", 1, 0.0)
+    response = _budget(client, calibration, 80)
+    assert response.status_code == 409 and "failed" in response.text
+    info = client.get(calibration.url, headers=calibration.headers).json()
+    assert info["status"] == "failed" and info["spec"]["budget"]["max_runs"] == 40
 
 
 def test_only_the_budget_can_change(client: AppClient, calibration: Calibration) -> None:

@@ -188,7 +188,11 @@ def test_a_spent_budget_is_raised_and_the_worker_goes_on(
     assert again.returncode in (0, 3), again.stderr
     info = json.loads(cli("status", cid, "--json", url=live_server, token=token).stdout)
     assert 8 < info["runs_completed"] <= least
-    # The same budget again is no raise; a converged calibration cannot be reopened.
-    refused = cli("budget", cid, str(least), url=live_server, token=token)
+    # The same budget again changes nothing; a smaller one is refused, and a converged
+    # calibration cannot be reopened.
+    final = "budget_exhausted" if again.returncode == 3 else "converged"
+    same = cli("budget", cid, str(least), url=live_server, token=token)
+    assert same.returncode == 0 and same.stdout == f"{cid}  {final}  budget {least} runs\n"
+    refused = cli("budget", cid, str(least - 1), url=live_server, token=token)
     reason = "max_runs" if again.returncode == 3 else "has converged"
     assert refused.returncode == 1 and reason in refused.stderr, refused.stderr

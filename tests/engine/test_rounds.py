@@ -23,6 +23,7 @@ from honing.engine.rounds import (
     _to_reference,
     posterior_samples,
     proximity_weight,
+    raise_budget,
     refit,
     retained_runs,
     start,
@@ -325,7 +326,7 @@ def test_a_budget_spent_before_convergence_is_explained():
     assert "round 1 had no new runs that an earlier surrogate had predicted" in budget
     assert "round 1 had no earlier posterior to compare with" in budget
     # Round 2 passed every check, so one more passing round would do: one batch of 5.
-    assert "raise the budget to at least 20 runs" in budget and "one more batch" in budget
+    assert "at least 20 runs, a batch for the round the stop rule still needs" in budget
     assert "round 2" not in budget  # its surrogate validated and its change was measured
     roomy = CalibrationLoop(spec)
     roomy.run(sim)
@@ -356,7 +357,7 @@ def test_a_raised_budget_goes_on_from_where_the_old_one_stopped():
     assert loop.state.history[:2] == before.history
 
 
-@pytest.mark.parametrize("max_runs", [15, 10, 100_001, 20.5, True])
+@pytest.mark.parametrize("max_runs", [14, 10, 100_001, 20.5, True])
 def test_a_budget_that_is_not_larger_is_refused_and_nothing_changes(max_runs):
     spec, sim = _small_loop()
     loop = CalibrationLoop(
@@ -368,6 +369,27 @@ def test_a_budget_that_is_not_larger_is_refused_and_nothing_changes(max_runs):
         loop.raise_budget(max_runs)
     assert caught.value.errors[0]["loc"] == ["budget", "max_runs"]
     assert loop.state is state and loop.spec.max_runs == 15
+
+
+def test_the_current_budget_again_changes_nothing():
+    spec, sim = _small_loop()
+    loop = CalibrationLoop(spec)
+    loop.run(sim)
+    state = loop.state
+    loop.raise_budget(spec.max_runs)  # even once converged: a repeated request is harmless
+    assert loop.state is state and loop.spec is spec
+
+
+def test_a_budget_must_leave_room_beyond_the_runs_already_spent():
+    # Imported runs count towards the budget, so more can be spent than a budget allows.
+    spec, sim = _small_loop()
+    short = CalibrationSpec.from_dict({**spec.to_dict(), "budget": {"max_runs": 15}})
+    loop = CalibrationLoop(short)
+    loop.run(sim)
+    with pytest.raises(SpecError, match="than the 20 runs spent or out"):
+        raise_budget(short, loop.state, 20, spent=20)
+    larger, reopened = raise_budget(short, loop.state, 21, spent=20)
+    assert larger.max_runs == 21 and reopened.status == "collecting"
 
 
 def test_a_converged_calibration_cannot_be_reopened():
@@ -383,7 +405,7 @@ def test_a_converged_calibration_cannot_be_reopened():
 def test_a_budget_spent_on_failed_runs_is_explained():
     # No run ever succeeds: no surrogate was fitted, and the warning says so beside the
     # fit's own.
-    spec, _ = _small_loop()
+    spec, sim = _small_loop()
     short = CalibrationSpec.from_dict({**spec.to_dict(), "budget": {"max_runs": 12}})
     loop = CalibrationLoop(short)
     while loop.status == "collecting":
@@ -393,7 +415,16 @@ def test_a_budget_spent_on_failed_runs_is_explained():
     warnings = loop.state.summary["diagnostics"]["warnings"]
     assert warnings[0].startswith("fewer than two successful runs")
     assert warnings[1].startswith("run budget spent before convergence: only 0 round(s) fitted")
-    assert "raise the budget to at least 22 runs" in warnings[1]  # 12 spent, two batches of 5
+    # Nothing fitted yet: 12 spent, a whole initial design (10), then two batches of 5.
+    assert "raise the budget to at least 32 runs" in warnings[1]
+    # Raised to that, with a simulator that now works, the calibration fits: its
+    # prior-predictive band comes from the first successful runs, as none of the initial
+    # design succeeded.
+    loop.raise_budget(32)
+    loop.run(sim)
+    assert loop.state.round >= 2 and len(loop.finished) <= 32
+    band = loop.state.summary["prior_predictive"]["y"]
+    assert np.all(np.array(band["lo95"]) < np.array(band["hi95"]))
 
 
 def test_rounds_whose_chain_stopped_at_its_cap_never_converge(monkeypatch):

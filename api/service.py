@@ -413,10 +413,10 @@ class CalibrationService:
         """
         for _ in range(_BUDGET_ATTEMPTS):
             meta = self.meta(calibration_id)
-            if meta.failed_error:
-                raise ConflictError("the calibration has failed; a larger budget cannot reopen it")
             state = self.state(meta)
             current = budgeted(self.spec(calibration_id), meta)
+            if meta.failed_error and max_runs != current.max_runs:
+                raise ConflictError("the calibration has failed; a larger budget cannot reopen it")
             spent = meta.done + meta.failed + meta.leased
             spec, reopened = raise_budget(current, state, max_runs, spent)
             blob = None if reopened is state else state_to_bytes(reopened)

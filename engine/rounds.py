@@ -131,6 +131,9 @@ PREDICTIVE_DRAWS = 400
 PRIOR_MISS_SHARE = 0.25
 #: Histogram bins for the prior-to-posterior divergence of each marginal.
 KL_BINS = 40
+#: Fewest successful runs a fit needs: the sparse regression's leave-one-out errors need
+#: three samples of positive weight (`honing.engine.regression.fit_shared_sparse`).
+MIN_FIT_RUNS = 3
 #: How the warning of a calibration that spent its budget before converging begins.
 _BUDGET_WARNING = "run budget spent before convergence: "
 
@@ -366,7 +369,7 @@ def refit(
     families = [p.prior.family for p in spec.parameters]
     ok = ~runs.failed
     xi_all = _to_reference(spec, runs.theta)
-    if ok.sum() < 2:
+    if ok.sum() < MIN_FIT_RUNS:
         return _without_fit(spec, state, runs, xi_all, rng, families)
 
     # After the first fit, runs follow the posterior: weight them by nearness to it and
@@ -742,9 +745,9 @@ def _prior_predictive(
     """95% band of a new measurement under the prior, from the initial design's runs, and the
     count of data points outside it per channel."""
     # The initial design's successful runs; when too few of them succeeded, the earliest
-    # successful runs (a fit needs two, so there are at least two).
+    # successful runs (a fit needs MIN_FIT_RUNS, so there are that many).
     first = runs.outputs[: spec.initial_runs][~runs.failed[: spec.initial_runs]]
-    if first.shape[0] < 2:
+    if first.shape[0] < MIN_FIT_RUNS:
         first = runs.outputs[~runs.failed][: spec.initial_runs]
     sim = whiten(spec, first).T
     measured = sim + rng.standard_normal(sim.shape[::-1]).T
@@ -800,10 +803,11 @@ def _without_fit(
     rng: np.random.Generator,
     families: list[Any],
 ) -> EngineState:
-    """Fewer than two successful runs: keep the prior, hand out fresh space-filling points."""
+    """Fewer than `MIN_FIT_RUNS` successful runs: keep the prior, hand out fresh space-filling
+    points."""
     fresh = initial_design(families, spec.initial_runs + runs.n_runs, rng)[runs.n_runs :]
     status = "budget_exhausted" if runs.n_runs >= spec.max_runs else state.status
-    warnings = ["fewer than two successful runs: the surrogate cannot be fitted yet"]
+    warnings = [f"fewer than {MIN_FIT_RUNS} successful runs: the surrogate cannot be fitted yet"]
     if status == "budget_exhausted":
         warnings.append(_budget_warning(spec, state.history, runs))
     summary = dict(state.summary)

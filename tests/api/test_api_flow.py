@@ -291,6 +291,8 @@ def test_a_failed_calibration_cannot_be_reopened(
     assert response.status_code == 409 and "failed" in response.text
     info = client.get(calibration.url, headers=calibration.headers).json()
     assert info["status"] == "failed" and info["spec"]["budget"]["max_runs"] == 40
+    same = _budget(client, calibration, 40)  # the current budget: a success, as ever
+    assert same.status_code == 200 and same.json()["status"] == "failed"
 
 
 def test_only_the_budget_can_change(client: AppClient, calibration: Calibration) -> None:

@@ -392,6 +392,28 @@ def test_a_budget_must_leave_room_beyond_the_runs_already_spent():
     assert larger.max_runs == 21 and reopened.status == "collecting"
 
 
+def test_two_successful_runs_wait_for_a_third_before_the_first_fit():
+    # The sparse fit needs three runs: with two, the round keeps the prior and says so.
+    spec, sim = _small_loop()
+    loop = CalibrationLoop(
+        CalibrationSpec.from_dict({**spec.to_dict(), "budget": {"max_runs": 11}})
+    )
+    for i, p in enumerate(loop.ask(10)):
+        loop.tell(
+            p.point_id,
+            **({"outputs": sim(spec.parameters_dict(p.theta))} if i < 2 else {"error": "x"}),
+        )
+    assert loop.state.round == 0
+    assert loop.state.summary["diagnostics"]["warnings"][0].startswith("fewer than 3 successful")
+    loop.raise_budget(12)
+    for p in loop.ask(1):
+        loop.tell(p.point_id, outputs=sim(spec.parameters_dict(p.theta)))
+    assert loop.state.round == 0  # 11 runs, 3 successful: not yet a batch since round 0
+    (p,) = loop.ask(1)
+    loop.tell(p.point_id, outputs=sim(spec.parameters_dict(p.theta)))
+    assert loop.state.round == 1 and loop.status == "budget_exhausted"
+
+
 def test_a_converged_calibration_cannot_be_reopened():
     spec, sim = _small_loop()
     loop = CalibrationLoop(spec)
@@ -413,7 +435,7 @@ def test_a_budget_spent_on_failed_runs_is_explained():
             loop.tell(p.point_id, error="solver diverged")
     assert loop.status == "budget_exhausted" and loop.state.round == 0
     warnings = loop.state.summary["diagnostics"]["warnings"]
-    assert warnings[0].startswith("fewer than two successful runs")
+    assert warnings[0].startswith("fewer than 3 successful runs")
     assert warnings[1].startswith("run budget spent before convergence: only 0 round(s) fitted")
     # Nothing fitted yet: 12 spent, a whole initial design (10), then two batches of 5.
     assert "raise the budget to at least 32 runs" in warnings[1]

@@ -202,6 +202,14 @@ return out
 """
 )
 
+# The start of a compare-and-swap on the state version (KEYS[1] the meta hash, ARGV[1] the
+# version the caller read): -1 when the calibration is gone, 0 when the version moved on.
+_VERSION_CHECK = """
+local meta = KEYS[1]
+if redis.call('EXISTS', meta) == 0 then return -1 end
+if redis.call('HGET', meta, 'state_version') ~= ARGV[1] then return 0 end
+"""
+
 # KEYS: 1 meta, 2 state, 3 proposals
 # ARGV: 1 expected state version, 2 state blob, 3 round, 4 engine status, then proposal JSONs
 # Compare-and-swap: replaces the state and the proposal queue only when the stored version is
@@ -209,10 +217,8 @@ return out
 # Returns 1 swapped, 0 version moved on, -1 no calibration.
 _SWAP = (
     _WRITES
+    + _VERSION_CHECK
     + """
-local meta = KEYS[1]
-if redis.call('EXISTS', meta) == 0 then return -1 end
-if redis.call('HGET', meta, 'state_version') ~= ARGV[1] then return 0 end
 redis.call('SET', KEYS[2], ARGV[2])
 redis.call('DEL', KEYS[3])
 for i = 5, #ARGV do redis.call('RPUSH', KEYS[3], ARGV[i]) end
@@ -229,10 +235,8 @@ return 1
 # failure is recorded. Returns 1 set, 0 version moved on or failed, -1 no calibration.
 _BUDGET = (
     _WRITES
+    + _VERSION_CHECK
     + """
-local meta = KEYS[1]
-if redis.call('EXISTS', meta) == 0 then return -1 end
-if redis.call('HGET', meta, 'state_version') ~= ARGV[1] then return 0 end
 if redis.call('HEXISTS', meta, 'failed_error') == 1 then return 0 end
 if ARGV[4] ~= '' then redis.call('SET', KEYS[2], ARGV[4]) end
 redis.call('HINCRBY', meta, 'state_version', 1)

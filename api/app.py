@@ -69,8 +69,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.settings = settings
     app.state.metrics = metrics
     install_problem_handlers(app)
-    for module in (calibrations, runs, posterior, health):
+    modules = (calibrations, runs, posterior, health)
+    for module in modules:
         app.include_router(module.router)
+    app.state.routes = [*app.router.routes, *(r for m in modules for r in m.router.routes)]
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes)
     app.add_middleware(RequestMetricsMiddleware, metrics=metrics)
     return app

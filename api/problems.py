@@ -18,6 +18,7 @@ from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.routing import Match
 
 from honing.api.errors import Forbidden, NotFound, Unauthorized
 from honing.api.models import Problem
@@ -103,7 +104,23 @@ async def _http_error(request: Request, exc: Exception) -> JSONResponse:
         detail = f"no route matches {request.url.path}"
     elif exc.status_code == 405:
         detail = f"{request.method} is not allowed on {request.url.path}"
+        return problem(405, detail, headers={"Allow": ", ".join(_allowed_methods(request))})
     return problem(exc.status_code, detail, headers=exc.headers)
+
+
+def _allowed_methods(request: Request) -> list[str]:
+    """Every method some route serves at the request's path (RFC 9110, 15.5.6): the router's
+    own 405 names only the first matching route's, and one path has a route per method.
+
+    The routes are the app's `state.routes` (see `honing.api.app.create_app`): included
+    routers are not flattened into ``app.routes`` in every FastAPI release.
+    """
+    methods: set[str] = set()
+    for route in request.app.state.routes:
+        match, _ = route.matches(request.scope)
+        if match != Match.NONE:
+            methods |= getattr(route, "methods", None) or set()
+    return sorted(methods)
 
 
 async def _validation_error(request: Request, exc: Exception) -> JSONResponse:

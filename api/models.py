@@ -255,6 +255,17 @@ class Diagnostics(_Output):
     surrogate_terms: int | None = None
     surrogate_degree: int | None = None
     converged: bool | None = None
+    unmet_conditions: list[str] | None = Field(
+        None,
+        description="What still keeps the stop rule from holding, one plain phrase per "
+        "condition with its value and round; empty once converged (an extension).",
+    )
+    suggested_max_runs: int | None = Field(
+        None,
+        description="When the run budget stopped the calibration: the smallest budget that "
+        "leaves a batch for each round the stop rule still needs (an extension; raise it "
+        "with PATCH on the calibration).",
+    )
 
 
 class PredictiveBand(_Output):

@@ -399,7 +399,8 @@ def _status(args: argparse.Namespace) -> int:
 
 
 def _budget_lines(client: Client, cid: str) -> list[str]:
-    """Why the budget ran out before convergence, from the posterior's warnings.
+    """Why the budget ran out before convergence, and the budget that would let it go on,
+    from the posterior's diagnostics.
 
     One attempt, and nothing if it fails: the status line and the exit code already say
     what matters, and a retried read could hold them back for minutes.
@@ -409,7 +410,18 @@ def _budget_lines(client: Client, cid: str) -> list[str]:
         summary = client.posterior(cid)
     except (ClientError, ValueError):  # ValueError: an answer that is not JSON
         return []
-    return [w for w in warning_lines(summary) if w.startswith("warning: run budget spent")]
+    diagnostics = summary.get("diagnostics") if isinstance(summary, dict) else None
+    if not isinstance(diagnostics, dict):
+        return []
+    lines = []
+    reasons = diagnostics.get("unmet_conditions")
+    if isinstance(reasons, list) and reasons:
+        reason = "; ".join(map(str, reasons))
+        lines.append(f"warning: run budget spent before convergence: {reason}")
+    least = diagnostics.get("suggested_max_runs")
+    if isinstance(least, int) and not isinstance(least, bool):
+        lines.append(f"to go on, raise the budget: honing budget {cid} {least}")
+    return lines
 
 
 def _posterior(args: argparse.Namespace) -> int:

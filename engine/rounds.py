@@ -70,6 +70,7 @@ __all__ = [
     "retained_floor",
     "retained_runs",
     "start",
+    "suggested_budget",
     "trust_index",
 ]
 
@@ -341,6 +342,7 @@ def raise_budget(
     diagnostics["warnings"] = [
         w for w in diagnostics.get("warnings", []) if not w.startswith(_BUDGET_WARNING)
     ]
+    diagnostics["suggested_max_runs"] = None
     summary = {**state.summary, "status": "collecting", "diagnostics": diagnostics}
     return larger, dataclasses.replace(state, status="collecting", summary=summary)
 
@@ -446,6 +448,7 @@ def refit(
         "runs_retained": int(kept.size),
         "runs_scored": int(np.count_nonzero(scored)),
         "converged": is_converged,
+        **_stop_diagnostics(spec, status, history, runs),
         "warnings": list(chain.warnings),
     }
 
@@ -511,6 +514,8 @@ def _empty_diagnostics() -> dict[str, Any]:
         "surrogate_terms": None,
         "surrogate_degree": None,
         "converged": False,
+        "unmet_conditions": None,
+        "suggested_max_runs": None,
         "warnings": [],
     }
 
@@ -773,15 +778,21 @@ def _prior_warnings(spec: CalibrationSpec, prior_predictive: dict[str, Any]) -> 
     return out
 
 
-def _budget_warning(spec: CalibrationSpec, history: list[dict[str, Any]], runs: RunTable) -> str:
-    """Why a calibration that spent its budget had not converged, and how to go on.
+def suggested_budget(spec: CalibrationSpec, history: list[dict[str, Any]], runs: RunTable) -> int:
+    """The smallest run budget that lets a calibration stopped by its budget converge.
 
-    Raised (`raise_budget`), the budget should leave a batch for each round the stop rule
-    still needs (`diagnostics.rounds_to_go`), and a whole initial design first when nothing
-    has been fitted yet: that first fit waits for one, and cannot count.
+    It leaves a batch for each round the stop rule still needs (`diagnostics.rounds_to_go`),
+    and a whole initial design first when nothing has been fitted yet: that first fit waits
+    for one, and cannot count. Workers that run several batches between refits fold them into
+    one round, so this is a floor, not a promise.
     """
+    first = 0 if history else spec.initial_runs
+    return runs.n_runs + first + rounds_to_go(history) * spec.batch_size
+
+
+def _budget_warning(spec: CalibrationSpec, history: list[dict[str, Any]], runs: RunTable) -> str:
+    """Why a calibration that spent its budget had not converged, and how to go on."""
     to_go = rounds_to_go(history)
-    least = runs.n_runs + (0 if history else spec.initial_runs) + to_go * spec.batch_size
     room = (
         "a batch for the round the stop rule still needs if it passes"
         if to_go == 1
@@ -791,8 +802,21 @@ def _budget_warning(spec: CalibrationSpec, history: list[dict[str, Any]], runs: 
         _BUDGET_WARNING
         + "; ".join(unmet_conditions(history))
         + ". Treat the posterior as provisional. To go on, raise the budget to at least "
-        f"{least} runs, {room}: the calibration keeps its runs and posterior"
+        f"{suggested_budget(spec, history, runs)} runs, {room}: the calibration keeps its "
+        "runs and posterior"
     )
+
+
+def _stop_diagnostics(
+    spec: CalibrationSpec, status: str, history: list[dict[str, Any]], runs: RunTable
+) -> dict[str, Any]:
+    """The stop rule's standing: the conditions it still misses (empty once converged) and,
+    when the budget stopped the calibration, the budget that would let it go on."""
+    spent = status == "budget_exhausted"
+    return {
+        "unmet_conditions": unmet_conditions(history),
+        "suggested_max_runs": suggested_budget(spec, history, runs) if spent else None,
+    }
 
 
 def _without_fit(
@@ -814,6 +838,7 @@ def _without_fit(
     summary["diagnostics"] = {
         **_empty_diagnostics(),
         "failed_fraction": float(runs.failed.mean()) if runs.n_runs else 0.0,
+        **_stop_diagnostics(spec, status, state.history, runs),
         "warnings": warnings,
     }
     summary["status"] = status

@@ -231,13 +231,20 @@ def test_a_spent_budget_says_how_to_go_on_and_that_way_works(
     (warning,) = [w for w in before["diagnostics"]["warnings"] if "budget spent" in w]
     assert "raise the budget to at least 16 runs" in warning  # 12 spent, a batch of 4
     assert "16 runs, a batch for the round the stop rule still needs if it passes" in warning
-    response = _budget(client, cal, 16)
+    # The same advice, structured (an extension), for scripts: the budget and the reasons.
+    diagnostics = before["diagnostics"]
+    assert diagnostics["suggested_max_runs"] == 16
+    assert diagnostics["unmet_conditions"] and all(
+        u in warning for u in diagnostics["unmet_conditions"]
+    )
+    response = _budget(client, cal, diagnostics["suggested_max_runs"])
     assert response.status_code == 200, response.text
     info = response.json()
     assert info["status"] == "collecting" and info["spec"]["budget"] == {"max_runs": 16}
     after = client.get(f"{cal.url}/posterior", headers=cal.headers).json()
     assert after["round"] == 2 and after["parameters"] == before["parameters"]
     assert not any("budget spent" in w for w in after["diagnostics"]["warnings"])
+    assert after["diagnostics"]["suggested_max_runs"] is None
     final = _drive(client, cal, refitter)
     assert final["runs_completed"] == 16
     assert client.get(f"{cal.url}/posterior", headers=cal.headers).json()["round"] == 3

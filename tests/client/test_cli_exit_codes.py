@@ -58,12 +58,38 @@ def test_status_exit_codes(fake_server: Any, cli: Any, status: str, code: int) -
 
 def test_status_explains_a_spent_budget_from_the_posterior(fake_server: Any, cli: Any) -> None:
     fake_server.on("GET", CAL, calibration("budget_exhausted"))
-    reason = "run budget spent before convergence: round 4 had no earlier posterior"
-    warnings = ["prior check: 9 of 12 points lie outside", reason]
-    fake_server.on("GET", f"{CAL}/posterior", {"diagnostics": {"warnings": warnings}})
+    reasons = ["round 4 had no earlier posterior to compare with", "only 1 round(s) fitted"]
+    diagnostics = {
+        "warnings": ["prior check: 9 of 12 points lie outside", "run budget spent: ..."],
+        "unmet_conditions": reasons,
+        "suggested_max_runs": 72,
+    }
+    fake_server.on("GET", f"{CAL}/posterior", {"diagnostics": diagnostics})
     result = cli("status", "c1", url=fake_server.url, token="t")
     assert result.returncode == 3
-    assert result.stderr == f"warning: {reason}\n"  # only the budget's reason, on stderr
+    # only the stop rule's reasons and the way on, on stderr; not the other warnings
+    assert result.stderr.splitlines() == [
+        "warning: run budget spent before convergence: " + "; ".join(reasons),
+        "to go on, raise the budget: honing budget c1 72",
+    ]
+
+
+@pytest.mark.parametrize(
+    "diagnostics",
+    [
+        {"unmet_conditions": "not a list", "suggested_max_runs": "72"},
+        {"unmet_conditions": [], "suggested_max_runs": True},
+        {"unmet_conditions": None, "suggested_max_runs": None},
+        "not an object",
+    ],
+)
+def test_status_of_a_spent_budget_skips_odd_diagnostics(
+    fake_server: Any, cli: Any, diagnostics: object
+) -> None:
+    fake_server.on("GET", CAL, calibration("budget_exhausted"))
+    fake_server.on("GET", f"{CAL}/posterior", {"diagnostics": diagnostics})
+    result = cli("status", "c1", url=fake_server.url, token="t")
+    assert result.returncode == 3 and result.stderr == ""
 
 
 def test_status_of_a_spent_budget_without_a_posterior_still_exits_3(

@@ -103,6 +103,7 @@ def test_worker_runs_a_calibration_to_its_end(
     # A spent budget comes with the engine's reason on stderr; convergence with nothing.
     spent = "warning: run budget spent before convergence: "
     assert status.stderr.startswith(spent) is (final == "budget_exhausted"), status.stderr
+    assert (f"honing budget {cid} " in status.stderr) is (final == "budget_exhausted")
     waited = cli("status", cid, "--wait", "--json", url=live_server, token=token)
     assert waited.returncode == result.returncode
     assert json.loads(waited.stdout)["runs_completed"] == len(done)
@@ -178,8 +179,9 @@ def test_a_spent_budget_is_raised_and_the_worker_goes_on(
     assert first.returncode == 3, first.stderr
     status = cli("status", cid, url=live_server, token=token)
     assert status.returncode == 3
-    hint = status.stderr.split("raise the budget to at least ")[1]
-    least = int(hint.split()[0])
+    hint = status.stderr.splitlines()[-1]
+    assert hint.startswith(f"to go on, raise the budget: honing budget {cid} "), status.stderr
+    least = int(hint.split()[-1])
     assert least > 8
     raised = cli("budget", cid, str(least), url=live_server, token=token)
     assert raised.returncode == 0, raised.stderr

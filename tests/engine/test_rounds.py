@@ -9,7 +9,12 @@ from scipy import integrate, stats
 from scipy.spatial.distance import mahalanobis
 
 from honing.engine import rounds
-from honing.engine.diagnostics import VALIDATION_TOLERANCE, gaussian_kl, kl_tolerance
+from honing.engine.diagnostics import (
+    VALIDATION_TOLERANCE,
+    gaussian_kl,
+    kl_tolerance,
+    unmet_conditions,
+)
 from honing.engine.errors import ConflictError, SpecError
 from honing.engine.loop import CalibrationLoop
 from honing.engine.rounds import (
@@ -328,10 +333,17 @@ def test_a_budget_spent_before_convergence_is_explained():
     # Round 2 passed every check, so one more passing round would do: one batch of 5.
     assert "at least 20 runs, a batch for the round the stop rule still needs" in budget
     assert "round 2" not in budget  # its surrogate validated and its change was measured
+    # The same, structured: the reasons the warning joins, and the budget it names.
+    diagnostics = loop.state.summary["diagnostics"]
+    assert diagnostics["suggested_max_runs"] == 20
+    assert diagnostics["unmet_conditions"] == unmet_conditions(loop.state.history)
+    assert "; ".join(diagnostics["unmet_conditions"]) in budget
     roomy = CalibrationLoop(spec)
     roomy.run(sim)
     assert roomy.status == "converged"
-    assert not any("run budget" in w for w in roomy.state.summary["diagnostics"]["warnings"])
+    diagnostics = roomy.state.summary["diagnostics"]
+    assert not any("run budget" in w for w in diagnostics["warnings"])
+    assert diagnostics["unmet_conditions"] == [] and diagnostics["suggested_max_runs"] is None
 
 
 def test_a_raised_budget_goes_on_from_where_the_old_one_stopped():
@@ -439,10 +451,12 @@ def test_a_budget_spent_on_failed_runs_is_explained():
     assert warnings[1].startswith("run budget spent before convergence: only 0 round(s) fitted")
     # Nothing fitted yet: 12 spent, a whole initial design (10), then two batches of 5.
     assert "raise the budget to at least 32 runs" in warnings[1]
+    assert loop.state.summary["diagnostics"]["suggested_max_runs"] == 32
     # Raised to that, with a simulator that now works, the calibration fits: its
     # prior-predictive band comes from the first successful runs, as none of the initial
     # design succeeded.
     loop.raise_budget(32)
+    assert loop.state.summary["diagnostics"]["suggested_max_runs"] is None
     loop.run(sim)
     assert loop.state.round >= 2 and len(loop.finished) <= 32
     band = loop.state.summary["prior_predictive"]["y"]

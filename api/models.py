@@ -12,6 +12,8 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
+from honing.engine.spec import MAX_UNIT_CHARS
+
 __all__ = [
     "BudgetRequest",
     "CalibrationResponse",
@@ -89,7 +91,7 @@ Prior = Annotated[
 class ParameterSpec(_Input):
     name: Name
     prior: Prior
-    unit: str | None = None
+    unit: str | None = Field(None, max_length=MAX_UNIT_CHARS)
 
 
 class ObservationSpec(_Input):

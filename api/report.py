@@ -31,7 +31,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullFormatter
 
-from honing.engine.spec import CalibrationSpec, Observation, Parameter
+from honing.engine.spec import NOISE_SCALE_NAME, CalibrationSpec, Observation, Parameter
 from honing.engine.state import EngineState
 
 __all__ = ["render_report"]
@@ -109,7 +109,7 @@ def render_report(spec: CalibrationSpec, state: EngineState, runs: list[dict[str
     """
     summary = state.summary if isinstance(state.summary, Mapping) else {}
     diagnostics = _mapping(summary.get("diagnostics"))
-    columns = spec.names + (["noise_scale"] if spec.noise_scale == "estimate" else [])
+    columns = spec.names + ([NOISE_SCALE_NAME] if spec.noise_scale == "estimate" else [])
     draws, pool_note = _usable_pool(state.pool, len(columns))
     fitted = state.round > 0
     runs_completed = _number(summary.get("runs_completed"))

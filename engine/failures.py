@@ -16,7 +16,9 @@ from sklearn.linear_model import LogisticRegression
 
 __all__ = ["FailureModel"]
 
-#: Inverse regularisation strength of the logistic fit (scikit-learn's default).
+#: Inverse regularisation strength of the logistic fit: weak (scikit-learn's default is 1.0),
+#: so that a sharp failure boundary is fitted as sharp, with just enough of a penalty to keep
+#: the coefficients finite when the classes separate.
 REGULARISATION_C = 10000.0
 #: Convergence tolerance and iteration cap of the logistic fit. Failures are usually a sharp
 #: boundary, so the classes are nearly separable and the likelihood is flat along the boundary's

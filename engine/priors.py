@@ -54,6 +54,12 @@ __all__ = [
 Family = Literal["legendre", "hermite"]
 
 _FAMILIES: tuple[Family, ...] = ("legendre", "hermite")
+#: Narrowest and widest prior sd accepted: squares and reciprocals of posterior spreads then
+#: stay far inside the float range whatever the data do.
+SD_RANGE = (1e-150, 1e150)
+#: Upper probability of the central range a prior must keep finite (its 0.05% to 99.95%
+#: points, the range the report plots).
+CENTRAL_MASS = 0.9995
 _LOG_HALF = math.log(0.5)
 _LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 
@@ -236,7 +242,9 @@ class Uniform(Prior):
         return {"low": self.low, "high": self.high}
 
     def to_reference(self, x: np.ndarray) -> np.ndarray:
-        return 2.0 * (np.asarray(x, dtype=float) - self.low) / (self.high - self.low) - 1.0
+        x = np.asarray(x, dtype=float)
+        xi = 2.0 * (x - self.low) / (self.high - self.low) - 1.0
+        return _clip_where(xi, self.in_support(x), -1.0, 1.0)
 
     def from_reference(self, xi: np.ndarray) -> np.ndarray:
         xi = np.asarray(xi, dtype=float)
@@ -394,11 +402,13 @@ class LogUniform(Prior):
 
     @property
     def _log_width(self) -> float:
-        return math.log(self.high / self.low)
+        """``log(high / low)``, finite for any positive floats (the ratio itself may not be)."""
+        return math.log(self.high) - math.log(self.low)
 
     def to_reference(self, x: np.ndarray) -> np.ndarray:
-        log_x = _log_positive(np.asarray(x, dtype=float))
-        return 2.0 * (log_x - math.log(self.low)) / self._log_width - 1.0
+        x = np.asarray(x, dtype=float)
+        xi = 2.0 * (_log_positive(x) - math.log(self.low)) / self._log_width - 1.0
+        return _clip_where(xi, self.in_support(x), -1.0, 1.0)
 
     def from_reference(self, xi: np.ndarray) -> np.ndarray:
         xi = np.asarray(xi, dtype=float)
@@ -426,7 +436,8 @@ class LogUniform(Prior):
     def sd(self) -> float:
         # E[x^2] = mean * (low + high) / 2, so the variance factors as below; the bracket is the
         # arithmetic minus the logarithmic mean of low and high, which is positive.
-        return math.sqrt(self.mean * (0.5 * (self.low + self.high) - self.mean))
+        # (square roots apart, so that a range of hundreds of decades does not overflow)
+        return math.sqrt(self.mean) * math.sqrt(0.5 * self.low + 0.5 * self.high - self.mean)
 
 
 @dataclass(frozen=True)
@@ -576,4 +587,30 @@ def prior_from_dict(data: Mapping[str, Any], loc: tuple[str | int, ...] = ("prio
     problems = cls._check(params)
     if problems:
         raise SpecError([((*loc, name), msg) for name, msg in problems])
-    return cls._from_params(params)
+    prior = cls._from_params(params)
+    scale = _scale_problem(prior)
+    if scale:
+        raise SpecError.at(loc, scale)
+    return prior
+
+
+def _scale_problem(prior: Prior) -> str | None:
+    """Why a prior's spread is beyond what the engine's arithmetic can hold, or None.
+
+    Its mean and its central range must be finite floats and its sd within `SD_RANGE`: the
+    design, the posterior's variances and their reciprocals are then finite too.
+    """
+    low, high = SD_RANGE
+    with np.errstate(all="ignore"):
+        try:
+            mean, sd = float(prior.mean), float(prior.sd)
+            ends = prior.ppf(np.array([1.0 - CENTRAL_MASS, CENTRAL_MASS]))
+        except (OverflowError, ValueError, ZeroDivisionError):
+            mean, sd, ends = math.inf, math.inf, np.array([math.inf])
+    if math.isfinite(mean) and low <= sd <= high and np.all(np.isfinite(ends)):
+        return None
+    return (
+        f"too wide or too narrow for floating-point arithmetic (mean {mean:.3g}, sd {sd:.3g}): "
+        f"the sd must lie between {low:g} and {high:g}, and the mean and the 0.05% to 99.95% "
+        "points must be finite"
+    )

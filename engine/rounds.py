@@ -56,7 +56,7 @@ from honing.engine.sampling import (
     n_walkers,
     sample_posterior,
 )
-from honing.engine.spec import LIMITS, CalibrationSpec
+from honing.engine.spec import LIMITS, NOISE_SCALE_NAME, CalibrationSpec
 from honing.engine.state import EngineState, RunTable
 from honing.engine.surrogate import Frame, Surrogate, fit_surrogate
 
@@ -243,7 +243,7 @@ def start(spec: CalibrationSpec) -> EngineState:
         "predictive": {},
     }
     if spec.noise_scale == "estimate":
-        summary["parameters"]["noise_scale"] = None
+        summary["parameters"][NOISE_SCALE_NAME] = None
     return EngineState(
         round=0,
         status="collecting",
@@ -297,7 +297,7 @@ def posterior_samples(
     """Up to ``count`` posterior draws (the prior's before the first fit), columns named."""
     names = list(spec.names)
     if spec.noise_scale == "estimate" and state.pool.shape[1] > spec.dim:
-        names.append("noise_scale")
+        names.append(NOISE_SCALE_NAME)
     n = state.pool.shape[0]
     if count >= n:
         return names, state.pool
@@ -686,7 +686,7 @@ def _parameter_summaries(
         out[p.name] = entry
     if estimate:
         s = pool[:, spec.dim]
-        out["noise_scale"] = parameter_summary(s, s[best], float("nan"))
+        out[NOISE_SCALE_NAME] = parameter_summary(s, s[best], float("nan"))
     return out
 
 

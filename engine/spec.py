@@ -7,7 +7,7 @@ documented defaults; `to_dict` gives the normalised form back. Every error names
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, Literal
 
@@ -16,7 +16,7 @@ import numpy as np
 from honing.engine.errors import SpecError
 from honing.engine.priors import Prior, prior_from_dict
 
-__all__ = ["LIMITS", "CalibrationSpec", "Observation", "Parameter"]
+__all__ = ["LIMITS", "NOISE_SCALE_NAME", "CalibrationSpec", "Observation", "Parameter"]
 
 NoiseScale = Literal["fixed", "estimate"]
 
@@ -30,6 +30,17 @@ LIMITS = {
     "max_runs": 100_000,
     "max_degree": 20,
 }
+
+#: Name of the noise scale's column in posterior summaries and samples when it is estimated;
+#: no parameter may take it.
+NOISE_SCALE_NAME = "noise_scale"
+#: Longest parameter unit: a label, shown in every table and report row.
+MAX_UNIT_CHARS = 64
+#: Farthest a reported output may lie from the data, in noise sd: squared and summed over
+#: every value of every run it stays far inside the float range, so a fit cannot overflow.
+MAX_RESIDUAL_SD = 1e100
+#: Most unknown observation names one report's error lists.
+MAX_UNKNOWN_LISTED = 20
 
 _NAME_CHARS = set("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789_-.")
 
@@ -97,18 +108,25 @@ class CalibrationSpec:
     def flatten_outputs(self, outputs: Mapping[str, Any]) -> np.ndarray:
         """Validate one run's outputs ``{channel: [numbers]}`` and concatenate them.
 
-        Raises `SpecError` naming ``("outputs", channel)`` for a missing or unknown channel,
-        a wrong length, a non-number or a non-finite value.
+        Raises `SpecError` naming ``("outputs", channel)`` for a missing or unknown channel
+        (the first `MAX_UNKNOWN_LISTED` unknown ones), a wrong length, a non-number or a
+        non-finite value, and ``("outputs", channel, i)`` for a value farther than
+        `MAX_RESIDUAL_SD` noise sd from the data, which no fit could hold.
         """
         if not isinstance(outputs, Mapping):
             raise SpecError.at(("outputs",), "must be an object {observation name: [numbers]}")
         errors: list[tuple[tuple[str | int, ...], str]] = []
         known = {o.name for o in self.observations}
-        errors.extend(
-            (("outputs", str(k)), f"unknown observation {k!r}; expected one of {sorted(known)}")
-            for k in outputs
-            if k not in known
-        )
+        unknown = [k for k in outputs if k not in known]
+        if unknown:
+            expected = _name_list(o.name for o in self.observations)
+            errors.extend(
+                (("outputs", str(k)), f"unknown observation; expected one of {expected}")
+                for k in unknown[:MAX_UNKNOWN_LISTED]
+            )
+            if len(unknown) > MAX_UNKNOWN_LISTED:
+                more = len(unknown) - MAX_UNKNOWN_LISTED
+                errors.append((("outputs",), f"{more} more unknown observations"))
         parts = []
         for obs in self.observations:
             loc: tuple[str | int, ...] = ("outputs", obs.name)
@@ -122,6 +140,19 @@ class CalibrationSpec:
                 continue
             if values.shape[0] != obs.size:
                 errors.append((loc, f"expected {obs.size} values, got {values.shape[0]}"))
+                continue
+            with np.errstate(over="ignore"):
+                residual = np.abs((values - obs.values) / obs.sd)
+            far = np.flatnonzero(~(residual <= MAX_RESIDUAL_SD))
+            if far.size:
+                errors.append(
+                    (
+                        (*loc, int(far[0])),
+                        f"{values[far[0]]:.3g} lies more than {MAX_RESIDUAL_SD:.0e} noise sd "
+                        "from the data, beyond what a fit can hold; report a diverged run "
+                        "as failed",
+                    )
+                )
                 continue
             parts.append(values)
         if errors:
@@ -200,7 +231,7 @@ class CalibrationSpec:
         surrogate = _section(errors, data, "surrogate", {"max_degree", "retain_fraction"})
         max_degree = _int_field(errors, surrogate, ("surrogate", "max_degree"), 8, 1)
         retain = surrogate.get("retain_fraction", 0.5)
-        if not _is_number(retain) or not 0.0 < float(retain) <= 1.0:
+        if not _is_finite_number(retain) or not 0.0 < float(retain) <= 1.0:
             errors.append((("surrogate", "retain_fraction"), "must be a number in (0, 1]"))
         budget = _section(errors, data, "budget", {"max_runs"})
         max_runs = _int_field(errors, budget, ("budget", "max_runs"), 400, 1)
@@ -270,6 +301,13 @@ def _is_finite_number(value: Any) -> bool:
         return math.isfinite(float(value))
     except OverflowError:
         return False
+
+
+def _name_list(names: Iterable[str], shown: int = 10) -> str:
+    """Names for an error message: the first ``shown`` and how many in all."""
+    names = list(names)
+    listed = ", ".join(repr(n) for n in names[:shown])
+    return listed if len(names) <= shown else f"{listed}, ... ({len(names)} in all)"
 
 
 def _number_list(value: Any, loc: tuple[str | int, ...]) -> np.ndarray:
@@ -342,8 +380,10 @@ def _parameters(value: Any) -> tuple[Parameter, ...]:
                 raise SpecError.at((*loc, "prior"), "missing")
             prior = prior_from_dict(item["prior"], (*loc, "prior"))
             unit = item.get("unit")
-            if unit is not None and not isinstance(unit, str):
-                raise SpecError.at((*loc, "unit"), "must be a string")
+            if unit is not None and not (isinstance(unit, str) and len(unit) <= MAX_UNIT_CHARS):
+                raise SpecError.at(
+                    (*loc, "unit"), f"must be a string of at most {MAX_UNIT_CHARS} characters"
+                )
             out.append(Parameter(name, prior, unit))
         except SpecError as exc:
             errors.extend((tuple(e["loc"]), str(e["msg"])) for e in exc.errors)
@@ -352,6 +392,11 @@ def _parameters(value: Any) -> tuple[Parameter, ...]:
         (("parameters", i, "name"), f"duplicate name {n!r}")
         for i, n in enumerate(names)
         if n in names[:i]
+    )
+    errors.extend(
+        (("parameters", i, "name"), f"{n!r} is reserved for the estimated noise scale")
+        for i, n in enumerate(names)
+        if n == NOISE_SCALE_NAME
     )
     if errors:
         raise SpecError(errors)
@@ -382,7 +427,8 @@ def _observations(value: Any) -> tuple[Observation, ...]:
                 raise SpecError.at((*loc, "values"), "must not be empty")
             sd_raw = item.get("sd")
             if _is_number(sd_raw):
-                sd = np.full(values.shape, float(sd_raw))  # type: ignore[arg-type]
+                finite = _is_finite_number(sd_raw)
+                sd = np.full(values.shape, float(sd_raw) if finite else math.inf)  # type: ignore[arg-type]
             else:
                 sd = _number_list(sd_raw, (*loc, "sd"))
                 if sd.shape != values.shape:

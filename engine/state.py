@@ -8,6 +8,7 @@ blob: an 8-byte header length, a UTF-8 JSON header, then each array's raw little
 from __future__ import annotations
 
 import json
+import math
 import struct
 from dataclasses import dataclass, field
 from typing import Any
@@ -129,10 +130,14 @@ def state_to_bytes(state: EngineState) -> bytes:
         **{f"x.{k}": v for k, v in state.arrays.items()},
     }
     specs, chunks, offset = {}, [], 0
-    for name, arr in arrays.items():
-        arr = np.ascontiguousarray(arr)
+    for name, value in arrays.items():
+        arr = np.asarray(value)
         arr = arr.astype(arr.dtype.newbyteorder("<"), copy=False)
-        raw = arr.tobytes()
+        if arr.dtype.str not in _ALLOWED_DTYPES:
+            raise StateError(
+                f"array {name!r} has dtype {arr.dtype.str!r}, which a state cannot hold"
+            )
+        raw = arr.tobytes(order="C")
         specs[name] = {"dtype": arr.dtype.str, "shape": list(arr.shape), "offset": offset}
         chunks.append(raw)
         offset += len(raw)
@@ -158,21 +163,30 @@ def state_from_bytes(blob: bytes) -> EngineState:
         header = json.loads(blob[8 : 8 + n_head].decode())
     except (struct.error, UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise StateError(f"unreadable state header: {exc}") from exc
+    if not isinstance(header, dict):
+        raise StateError("unreadable state header: not an object")
     if header.get("version") != STATE_VERSION:
         raise StateError(f"state version {header.get('version')!r}, expected {STATE_VERSION}")
-    body = memoryview(blob)[8 + n_head :]
+    try:
+        return _read_state(header, memoryview(blob)[8 + n_head :])
+    except (KeyError, TypeError, ValueError, AttributeError) as exc:
+        raise StateError(f"malformed state: {exc!r}") from exc
+
+
+def _read_state(header: dict[str, Any], body: memoryview) -> EngineState:
+    """The state a version-checked header describes, its arrays read from ``body``."""
     arrays: dict[str, np.ndarray] = {}
     for name, spec in header["arrays"].items():
         if spec["dtype"] not in _ALLOWED_DTYPES:
             raise StateError(f"array {name!r} has unsupported dtype {spec['dtype']!r}")
         dtype = np.dtype(spec["dtype"])
-        count = int(np.prod(spec["shape"], dtype=np.int64))
-        end = spec["offset"] + count * dtype.itemsize
+        shape, offset = [int(n) for n in spec["shape"]], int(spec["offset"])
+        if offset < 0 or any(n < 0 for n in shape):
+            raise StateError(f"array {name!r} has a negative offset or size")
+        end = offset + math.prod(shape) * dtype.itemsize
         if end > len(body):
             raise StateError(f"array {name!r} runs past the end of the state")
-        arrays[name] = (
-            np.frombuffer(body[spec["offset"] : end], dtype=dtype).reshape(spec["shape"]).copy()
-        )
+        arrays[name] = np.frombuffer(body[offset:end], dtype=dtype).reshape(shape).copy()
     for required in ("proposals", "predictions", "pool"):
         if required not in arrays:
             raise StateError(f"state lacks the array {required!r}")

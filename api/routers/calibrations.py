@@ -19,8 +19,12 @@ router = APIRouter(prefix="/v1/calibrations", tags=["calibrations"])
     responses=problem_responses(401, 403, 413, 422, 503),
 )
 def create_calibration(body: SpecRequest, service: ServiceDep) -> CreateResponse:
-    """Create a calibration from a spec; the answer carries its token (shown only once)."""
-    calibration_id, token, state = service.create(body.model_dump(exclude_unset=True))
+    """Create a calibration from a spec; the answer carries its token (shown only once).
+
+    A null optional field or section means its default, as the schema says.
+    """
+    spec = body.model_dump(exclude_unset=True, exclude_none=True)
+    calibration_id, token, state = service.create(spec)
     return CreateResponse(id=calibration_id, token=token, status=state)  # type: ignore[arg-type]
 
 

@@ -80,6 +80,9 @@ def test_nan_and_infinity_literals_are_422(
         ({"y": [1.0, "41.0", 3.0], "z": [1.0]}, ["body", "outputs", "y", 1]),
         ({"y": [1.0, False, 3.0], "z": [1.0]}, ["body", "outputs", "y", 1]),
         ({"y": 1.0, "z": [1.0]}, ["body", "outputs", "y"]),
+        # 1e200 lies 1e201 noise sd from the data: a fit on it would overflow (and the
+        # calibration fail for good), so it is refused where it is reported
+        ({"y": [1.0, 1e200, 3.0], "z": [1.0]}, ["body", "outputs", "y", 1]),
     ],
 )
 def test_bad_outputs_are_422_and_nothing_is_stored(
@@ -147,6 +150,22 @@ def test_unknown_run_is_404(client: AppClient, calibration: Calibration, run_id:
         (lambda s: s["parameters"].append(s["parameters"][0]), ["body", "parameters", 2, "name"]),
         (lambda s: s.pop("observations"), ["body", "observations"]),
         (lambda s: s.update(seed=-1), ["body", "seed"]),
+        # finite fields whose spread overflows: a 422 at the prior, never a 500
+        (
+            lambda s: s["parameters"][0].update(
+                prior={"kind": "uniform", "low": -1e308, "high": 1e308}
+            ),
+            ["body", "parameters", 0, "prior"],
+        ),
+        (
+            lambda s: s["parameters"][1].update(prior={"kind": "normal", "mean": 0, "sd": 1e-320}),
+            ["body", "parameters", 1, "prior"],
+        ),
+        (
+            lambda s: s["parameters"][0].update(name="noise_scale"),
+            ["body", "parameters", 0, "name"],
+        ),
+        (lambda s: s["parameters"][0].update(unit="m" * 65), ["body", "parameters", 0, "unit"]),
     ],
 )
 def test_bad_spec_is_422_naming_the_field(client: AppClient, change, loc: list) -> None:  # type: ignore[no-untyped-def]
@@ -154,6 +173,32 @@ def test_bad_spec_is_422_naming_the_field(client: AppClient, change, loc: list) 
     change(spec)
     body = assert_problem(client.post("/v1/calibrations", json=spec), 422)
     assert any(e[: len(loc)] == loc for e in locs(body)), body
+
+
+def test_null_optional_sections_mean_their_defaults(client: AppClient) -> None:
+    # The schema marks them nullable; null is taken as "not given".
+    spec = {**SPEC, "noise": None, "design": None, "surrogate": None, "budget": None}
+    spec["parameters"] = [{**p, "unit": None} for p in SPEC["parameters"]]
+    response = client.post("/v1/calibrations", json=spec)
+    assert response.status_code == 201, response.text
+    created = response.json()
+    headers = {"Authorization": f"Bearer {created['token']}"}
+    stored = client.get(f"/v1/calibrations/{created['id']}", headers=headers).json()["spec"]
+    assert stored["budget"] == {"max_runs": 400} and stored["noise"] == {"scale": "fixed"}
+
+
+def test_many_unknown_outputs_get_a_short_answer(
+    client: AppClient, calibration: Calibration
+) -> None:
+    # Each unknown name once named the expected ones again: 100,000 names made an answer
+    # of tens of megabytes. Now 20 are named, then a count.
+    (run,) = lease(client, calibration)
+    outputs = {"y": [1.0, 2.0, 3.0], "z": [1.0], **{f"u{i}": [0.0] for i in range(100_000)}}
+    url = f"{calibration.url}/runs/{run['run_id']}"
+    response = client.put(url, json={"outputs": outputs}, headers=calibration.headers)
+    body = assert_problem(response, 422)
+    assert len(response.content) < 5_000 and len(body["errors"]) == 21
+    assert body["errors"][-1]["msg"] == "99980 more unknown observations"
 
 
 def test_malformed_json_is_422(client: AppClient) -> None:

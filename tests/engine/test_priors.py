@@ -297,3 +297,44 @@ def test_constructors_validate() -> None:
     assert info.value.errors[0]["loc"] == ["sd"]
     with pytest.raises(SpecError):
         LogUniform(1.0, math.nan)
+
+
+@pytest.mark.parametrize(
+    "data",
+    [
+        {"kind": "uniform", "low": -1e308, "high": 1e308},  # high - low overflows
+        {"kind": "normal", "mean": 0, "sd": 1e308},  # its 99.95% point overflows
+        {"kind": "normal", "mean": 0, "sd": 1e-320},  # subnormal: 1 / sd overflows
+        {"kind": "lognormal", "median": 1, "sigma_log": 1e6},  # exp(sigma^2 / 2) overflows
+        {"kind": "loguniform", "low": 1e-308, "high": 1e308},  # sd about 1e306
+    ],
+)
+def test_priors_beyond_floating_point_are_refused_at_the_prior(data: dict[str, Any]) -> None:
+    # Each is finite field by field, yet its spread (or its reciprocal or square) is not a
+    # float; the engine's designs and posterior variances would overflow.
+    with pytest.raises(SpecError) as info:
+        prior_from_dict(data, LOC)
+    assert info.value.errors[0]["loc"] == list(LOC)
+    assert "floating-point" in str(info.value.errors[0]["msg"])
+
+
+def test_a_wide_loguniform_keeps_its_spread() -> None:
+    # high / low = 1e320 overflows, so the log width is log(high) - log(low): 320 decades.
+    # The point 1e-40 lies half way in log terms and maps to 0 (exact arithmetic).
+    prior = LogUniform(1e-200, 1e120)
+    assert prior.to_reference(np.array([1e-40]))[0] == pytest.approx(0.0, abs=1e-12)
+    # The moments do not depend on the width's overflow either (scipy.stats.loguniform).
+    assert prior.sd == pytest.approx(stats.loguniform(1e-200, 1e120).std(), rel=1e-9)
+
+
+def test_support_endpoints_map_onto_the_reference_interval_exactly() -> None:
+    # By definition the support's ends map to -1 and 1; rounding in the log map used to
+    # leave them up to 7.8e-14 outside, where the reference density is zero.
+    rng = np.random.default_rng(3)
+    for _ in range(2000):
+        low = float(np.exp(rng.uniform(-30, 30)))
+        high = low * float(np.exp(rng.uniform(0.01, 40)))
+        for prior in (LogUniform(low, high), Uniform(low, high)):
+            xi = prior.to_reference(np.array([low, high]))
+            assert_array_equal(xi, [-1.0, 1.0])
+            assert prior.in_support(prior.from_reference(xi)).all()

@@ -104,3 +104,67 @@ def test_parameters_outside_support_rejected():
     with pytest.raises(SpecError) as exc_info:
         spec.theta_from_dict({"velocity": 5.0, "dispersivity": 0.1}, ("parameters",))
     assert ("parameters", "velocity") in _locs(exc_info)
+
+
+@pytest.mark.parametrize(
+    ("change", "loc"),
+    [
+        ({"surrogate": {"retain_fraction": 10**400}}, ("surrogate", "retain_fraction")),
+        (
+            {"observations": [{"name": "y", "values": [1.0], "sd": 10**400}]},
+            ("observations", 0, "sd"),
+        ),
+        (
+            {
+                "parameters": [
+                    {"name": "a", "unit": "m" * 65, "prior": {"kind": "normal", "mean": 0, "sd": 1}}
+                ]
+            },
+            ("parameters", 0, "unit"),
+        ),
+    ],
+)
+def test_numbers_beyond_floats_and_long_units_name_their_field(change, loc):
+    # JSON integers have no size limit; float() of 10**400 raises OverflowError, which must
+    # become a located error, not a crash.
+    with pytest.raises(SpecError) as exc_info:
+        CalibrationSpec.from_dict(_spec(**change))
+    assert loc in _locs(exc_info)
+
+
+@pytest.mark.parametrize("scale", ["estimate", "fixed"])
+def test_the_noise_scale_name_is_reserved(scale):
+    # The estimated noise scale is a column of the posterior under this name; a parameter
+    # of the same name would be overwritten in every summary and sample.
+    data = _spec(noise={"scale": scale})
+    data["parameters"][1]["name"] = "noise_scale"
+    with pytest.raises(SpecError) as exc_info:
+        CalibrationSpec.from_dict(data)
+    assert _locs(exc_info) == [("parameters", 1, "name")]
+
+
+def test_unknown_outputs_are_listed_briefly():
+    # One report with many unknown names gets a bounded answer: 20 named, then a count,
+    # each naming the expected observations once.
+    spec = CalibrationSpec.from_dict(_spec())
+    outputs = {"port_1": [1, 2, 3], "port_2": [4, 5], **{f"x{i}": [0] for i in range(500)}}
+    with pytest.raises(SpecError) as exc_info:
+        spec.flatten_outputs(outputs)
+    errors = exc_info.value.errors
+    assert len(errors) == 21
+    assert errors[0] == {
+        "loc": ["outputs", "x0"],
+        "msg": "unknown observation; expected one of 'port_1', 'port_2'",
+    }
+    assert errors[-1] == {"loc": ["outputs"], "msg": "480 more unknown observations"}
+
+
+def test_outputs_too_far_from_the_data_for_a_fit_are_refused():
+    # 1e200 with sd 0.02 is 5e201 noise sd out: its square overflows, and a fit on it
+    # fails. 1e50 (about 5e51 sd) still fits and is accepted.
+    spec = CalibrationSpec.from_dict(_spec())
+    assert spec.flatten_outputs({"port_1": [1, 2, 1e50], "port_2": [4, 5]})[2] == 1e50
+    with pytest.raises(SpecError) as exc_info:
+        spec.flatten_outputs({"port_1": [1, 2, 3], "port_2": [4, -1e200]})
+    assert _locs(exc_info) == [("outputs", "port_2", 1)]
+    assert "report a diverged run as failed" in exc_info.value.errors[0]["msg"]

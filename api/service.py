@@ -26,7 +26,7 @@ import orjson
 from anyio import to_thread
 
 from honing.api.auth import check_token, hash_token, new_token
-from honing.api.errors import NotFound
+from honing.api.errors import Forbidden, NotFound, Unauthorized
 from honing.api.metrics import Metrics
 from honing.api.store import CalibrationMeta, NewCalibration, RunRecord, Store
 from honing.engine.errors import ConflictError, SpecError
@@ -54,8 +54,11 @@ RETRY_AFTER_SECONDS = 2
 #: Engine statuses after which no more work is handed out.
 FINAL_STATUSES = frozenset({"converged", "budget_exhausted", "failed"})
 _CACHE_SIZE = 128
-#: Runs leased by this instance, remembered so their report need not read them back first.
+#: Runs leased by this instance, remembered so their report need not read them back first:
+#: at most this many, and at most this many bytes of predictions (a run's prediction holds
+#: every output value, and outputs may number 200,000).
 _LEASED_CACHE_SIZE = 20_000
+_LEASED_CACHE_BYTES = 64 * 2**20
 #: Calibrations whose token hash is remembered (64 bytes each).
 _TOKEN_CACHE_SIZE = 8192
 # Ids become parts of store keys: anything else cannot name a calibration or run.
@@ -77,6 +80,12 @@ def rfc3339(timestamp: float | None) -> str | None:
         return None
     text = datetime.fromtimestamp(timestamp, UTC).isoformat(timespec="milliseconds")
     return text.replace("+00:00", "Z")
+
+
+def _prediction_bytes(record: RunRecord) -> int:
+    """Characters of a run's encoded prediction, what dominates its size in memory."""
+    prediction = record.point.get("prediction")
+    return len(prediction) if isinstance(prediction, str) else 0
 
 
 def _encode_prediction(row: np.ndarray) -> str:
@@ -239,6 +248,7 @@ class CalibrationService:
         self._specs: OrderedDict[str, CalibrationSpec] = OrderedDict()
         self._states: OrderedDict[str, tuple[int, EngineState]] = OrderedDict()
         self._leased: OrderedDict[tuple[str, str], RunRecord] = OrderedDict()
+        self._leased_bytes = 0
         self._token_hashes: OrderedDict[str, str] = OrderedDict()
 
     # caches
@@ -305,14 +315,25 @@ class CalibrationService:
     def _remember_leased(self, calibration_id: str, records: Sequence[RunRecord]) -> None:
         with self._lock:
             for record in records:
+                self._drop_leased((calibration_id, record.run_id))
                 self._leased[(calibration_id, record.run_id)] = record
-            while len(self._leased) > _LEASED_CACHE_SIZE:
-                self._leased.popitem(last=False)
+                self._leased_bytes += _prediction_bytes(record)
+            while len(self._leased) > _LEASED_CACHE_SIZE or (
+                self._leased and self._leased_bytes > _LEASED_CACHE_BYTES
+            ):
+                self._drop_leased(next(iter(self._leased)))
 
     def _leased_record(self, calibration_id: str, run_id: str) -> RunRecord | None:
         # A first guess only: the epoch fence of finish_run rejects it if the run has moved on.
         with self._lock:
-            return self._leased.pop((calibration_id, run_id), None)
+            return self._drop_leased((calibration_id, run_id))
+
+    def _drop_leased(self, key: tuple[str, str]) -> RunRecord | None:
+        """Remove one remembered lease (the caller holds the lock); the record, if any."""
+        record = self._leased.pop(key, None)
+        if record is not None:
+            self._leased_bytes -= _prediction_bytes(record)
+        return record
 
     def _count(self, state: str, n: int = 1) -> None:
         if self.metrics is not None and n:
@@ -335,22 +356,31 @@ class CalibrationService:
 
         A calibration's token hash never changes and ids are never reused, so hashes are
         cached: most requests are let in without a store read. A calibration deleted through
-        another replica passes here, and the operation itself then answers 404.
+        another replica passes here with the right token, and the operation itself then
+        answers 404; with a wrong or missing one the store is read again, so that it answers
+        404 too rather than 401 or 403.
         """
         if not _CALIBRATION_ID.fullmatch(calibration_id):
             raise NotFound(f"calibration {calibration_id!r} does not exist")
         with self._lock:
             expected = self._token_hashes.get(calibration_id)
-        if expected is None:
-            meta = await self.store.get_meta_async(calibration_id)
-            if meta is None:
-                raise NotFound(f"calibration {calibration_id!r} does not exist")
-            expected = meta.token_hash
-            with self._lock:
-                self._token_hashes[calibration_id] = expected
-                while len(self._token_hashes) > _TOKEN_CACHE_SIZE:
-                    self._token_hashes.popitem(last=False)
-        check_token(token, expected)
+        if expected is not None:
+            try:
+                check_token(token, expected)
+            except (Unauthorized, Forbidden):
+                if await self.store.get_meta_async(calibration_id) is None:
+                    self._forget(calibration_id)
+                    raise NotFound(f"calibration {calibration_id!r} does not exist") from None
+                raise
+            return calibration_id
+        meta = await self.store.get_meta_async(calibration_id)
+        if meta is None:
+            raise NotFound(f"calibration {calibration_id!r} does not exist")
+        with self._lock:
+            self._token_hashes[calibration_id] = meta.token_hash
+            while len(self._token_hashes) > _TOKEN_CACHE_SIZE:
+                self._token_hashes.popitem(last=False)
+        check_token(token, meta.token_hash)
         return calibration_id
 
     def status(self, meta: CalibrationMeta) -> str:
@@ -385,9 +415,20 @@ class CalibrationService:
         )
         return calibration_id, token, state.status
 
+    def current_meta(self, calibration_id: str) -> CalibrationMeta:
+        """`meta` with overdue leases expired first, so that reads show them as expired (a
+        lease or a report would expire them anyway, but either may be a long way off)."""
+        meta = self.meta(calibration_id)
+        if meta.leased:
+            expired = self.store.expire(calibration_id, self.clock())
+            if expired:
+                self._count("expired", expired)
+                meta = self.meta(calibration_id)
+        return meta
+
     def describe(self, calibration_id: str) -> dict[str, Any]:
         """Spec (with the budget in force), status, counts and round of a calibration."""
-        meta = self.meta(calibration_id)
+        meta = self.current_meta(calibration_id)
         spec = budgeted(self.spec(calibration_id), meta)
         return {
             "id": meta.id,
@@ -567,7 +608,7 @@ class CalibrationService:
 
     def runs(self, calibration_id: str, state: str | None = None) -> list[dict[str, Any]]:
         """Every run (optionally in one state) as API dicts, in creation order."""
-        self.meta(calibration_id)  # 404 for a calibration deleted meanwhile
+        self.current_meta(calibration_id)  # and 404 for a calibration deleted meanwhile
         return self._run_views(calibration_id, state)
 
     def _run_views(self, calibration_id: str, state: str | None = None) -> list[dict[str, Any]]:

@@ -104,3 +104,6 @@ def test_a_calibration_deleted_on_one_replica_is_gone_on_another(settings: Setti
         assert_problem(second.put(url, json=body, headers=cal.headers), 404)
         for path in ("/runs", "/posterior", "/posterior/samples"):
             assert_problem(second.get(cal.url + path, headers=cal.headers), 404)
+        # 404 whatever the token, as for an id never created (API.md), not 401 or 403
+        for headers in ({}, {"Authorization": "Bearer not-the-token"}):
+            assert_problem(second.get(cal.url, headers=headers), 404)

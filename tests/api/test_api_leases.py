@@ -1,9 +1,11 @@
 import json
 from datetime import datetime
 
+import pytest
 from helpers_api import SPEC, AppClient, Calibration, FakeClock, create, lease, report, simulate
 from test_api_auth import assert_problem
 
+from honing.api import service as service_module
 from honing.api.refitter import Refitter
 
 
@@ -81,6 +83,41 @@ def test_expired_runs_free_budget_for_their_points(client: AppClient, clock: Fak
     clock.now += 11
     second = lease(client, cal, 5)
     assert [r["parameters"] for r in second] == [r["parameters"] for r in first]
+
+
+def test_remembered_leases_keep_to_their_byte_budget(
+    client: AppClient, refitter: Refitter, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Each remembered lease holds its prediction (every output value, base64): the cache is
+    # bounded in bytes as well as in runs. Room for 2 here, with 24 characters each
+    # (4 float32 outputs); runs it forgot are read back from the store when reported.
+    monkeypatch.setattr(service_module, "_LEASED_CACHE_BYTES", 50)
+    cal = create(client)
+    for run in lease(client, cal, SPEC["design"]["initial_runs"]):
+        report(client, cal, run)
+    assert refitter.step() == ["written"]
+    service = client.app.state.service  # type: ignore[attr-defined]
+    runs = lease(client, cal, 4)
+    assert len(service._leased) == 2 and service._leased_bytes == 48
+    for run in runs:
+        assert report(client, cal, run)["state"] == "done"
+    assert len(service._leased) == 0 and service._leased_bytes == 0
+
+
+def test_an_overdue_lease_reads_as_expired(client: AppClient, clock: FakeClock) -> None:
+    # API.md: an overdue lease becomes "expired"; reads show it so without waiting for the
+    # next lease or report to notice.
+    cal = create(client)
+    (run,) = lease(client, cal, 1, lease_seconds=10)
+    clock.now += 11
+    info = client.get(cal.url, headers=cal.headers).json()
+    assert info["runs_leased"] == 0
+    (view,) = client.get(f"{cal.url}/runs", headers=cal.headers).json()["runs"]
+    assert view["run_id"] == run["run_id"] and view["state"] == "expired"
+    # its point is handed out again, and a late result is still kept
+    (again,) = lease(client, cal, 1)
+    assert again["parameters"] == run["parameters"] and again["run_id"] != run["run_id"]
+    assert report(client, cal, run)["state"] == "done"
 
 
 def test_leasing_goes_on_while_a_refit_runs(

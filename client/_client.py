@@ -19,11 +19,13 @@ import httpx
 from honing.client.errors import (
     ConnectionFailed,
     ProblemError,
+    RateLimited,
+    ServerError,
     SettingsError,
     problem_from_response,
 )
 
-__all__ = ["DEFAULT_URL", "FINISHED", "Client", "Lease", "RetryPolicy"]
+__all__ = ["DEFAULT_URL", "FINISHED", "MAX_OUTAGE", "TRANSIENT", "Client", "Lease", "RetryPolicy"]
 
 #: Where a server started with ``honing serve`` and no options listens.
 DEFAULT_URL = "http://127.0.0.1:8750"
@@ -32,6 +34,12 @@ DEFAULT_URL = "http://127.0.0.1:8750"
 FINISHED = frozenset({"converged", "budget_exhausted", "failed"})
 
 _IDEMPOTENT = frozenset({"GET", "HEAD", "PUT", "DELETE"})
+#: Errors a long-lived loop (a worker, a wait) rides out: the server is down, restarting or
+#: overloaded, and each call has already retried for a few seconds.
+TRANSIENT = (ConnectionFailed, ServerError, RateLimited)
+#: Seconds of such errors in a row after which a long-lived loop gives up (a restart or a
+#: failover takes well under this).
+MAX_OUTAGE = 300.0
 
 
 @dataclass(frozen=True)
@@ -202,7 +210,7 @@ class Client:
         response = self._request(
             "POST", _path(calibration_id, "runs"), json=body, retry_unsafe=True
         )
-        data = response.json()
+        data = _object(response, _path(calibration_id, "runs"))
         return Lease(
             runs=list(data.get("runs") or []),
             status=str(data.get("status", "")),
@@ -281,14 +289,26 @@ class Client:
         timeout: float | None = None,
         interval: float = 2.0,
         clock: Callable[[], float] = time.monotonic,
+        max_outage: float = MAX_OUTAGE,
     ) -> dict[str, Any]:
         """Poll until the calibration's status is final or ``timeout`` seconds pass.
 
-        Returns the last calibration document; its ``status`` tells which happened.
+        Returns the last calibration document; its ``status`` tells which happened. A server
+        that answered once and then becomes unreachable or fails (`TRANSIENT` errors) is
+        polled on for up to ``max_outage`` seconds, as a restart takes, and its error raised
+        after that; one that never answered (a wrong address, say) fails at once.
         """
         deadline = None if timeout is None else clock() + timeout
+        info: dict[str, Any] | None = None
+        outage_since: float | None = None
         while True:
-            info = self.calibration(calibration_id)
+            try:
+                info = self.calibration(calibration_id)
+                outage_since = None
+            except TRANSIENT:
+                outage_since = clock() if outage_since is None else outage_since
+                if info is None or clock() - outage_since >= max_outage:
+                    raise
             if info.get("status") in FINISHED:
                 return info
             if deadline is not None and clock() >= deadline:
@@ -301,13 +321,7 @@ class Client:
     # -- plumbing ------------------------------------------------------------------------
 
     def _json(self, method: str, path: str, **kwargs: Any) -> dict[str, Any]:
-        response = self._request(method, path, **kwargs)
-        data = response.json()
-        if not isinstance(data, dict):
-            raise ProblemError(
-                response.status_code, "Unexpected answer", f"expected a JSON object from {path}"
-            )
-        return data
+        return _object(self._request(method, path, **kwargs), path)
 
     def _request(
         self,
@@ -362,6 +376,23 @@ class Client:
 
     def _cancellable_sleep(self, seconds: float) -> None:
         self._cancelled.wait(seconds)
+
+
+def _object(response: httpx.Response, path: str) -> dict[str, Any]:
+    """A successful answer's JSON object; anything else (a page from some other service at
+    this address, say) is a `ProblemError` in one line."""
+    try:
+        data = response.json()
+    except ValueError:  # not JSON, or not UTF-8
+        data = None
+    if not isinstance(data, dict):
+        snippet = " ".join(response.text.split())[:80]
+        raise ProblemError(
+            response.status_code,
+            "Unexpected answer",
+            f"expected a JSON object from {path}, got {snippet!r}: is this a honing server?",
+        )
+    return data
 
 
 def _path(calibration_id: str, *parts: str) -> str:

@@ -20,7 +20,7 @@ from pathlib import Path
 from types import FrameType, ModuleType
 from typing import Any, TextIO
 
-from honing.client._client import DEFAULT_URL, Client, RetryPolicy
+from honing.client._client import DEFAULT_URL, MAX_OUTAGE, Client, RetryPolicy
 from honing.client.errors import ClientError, SettingsError
 from honing.client.files import load_spec, read_runs
 from honing.client.tables import (
@@ -67,12 +67,14 @@ Lease parameter points from the calibration, run COMMAND once for each, report t
 
 For each run COMMAND gets in its environment:
   HONING_PARAMS     path of a JSON file {parameter name: value}
-  HONING_P_<name>   each parameter's value as text (also with '-' and '.' in the name as '_')
+  HONING_P_<name>   each parameter's value as text (also with '-' and '.' in the name as '_',
+                    unless another parameter has that name)
   HONING_RUN_ID     the run's id
   HONING_OUTPUTS    path where COMMAND must write a JSON object {observation name: [numbers]}
 and "{name}" in its arguments is replaced by that parameter's value. COMMAND runs in the
 current folder. A non-zero exit, a missing or malformed outputs file, or a run longer than
 --run-timeout is reported as a failed run, with the end of COMMAND's stderr as the message.
+A COMMAND that cannot start at all stops the worker (exit 1) and reports nothing.
 
 The worker exits when the calibration stops handing out work: 0 once converged, 3 when the
 run budget is used up. Ctrl-C stops leasing and waits for the runs in hand to finish and be
@@ -85,18 +87,34 @@ example:
 """
 
 FINISHED_EXIT = {"converged": 0, "budget_exhausted": 3, "failed": 5}
+#: The server's bounds on one lease request (API.md): runs at once, and seconds held.
+MAX_JOBS = 1000
+MAX_LEASE_SECONDS = 604_800.0
+#: Seconds a default lease outlasts --run-timeout, for reporting after the command ends.
+LEASE_MARGIN = 60.0
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     parser = build_parser()
+    words = list(sys.argv[1:] if argv is None else argv)
+    # Everything after the first '--' is the worker's COMMAND, verbatim: argparse would drop
+    # a second '--' inside it, or not, depending on where the worker's options stand.
+    command: list[str] | None = None
+    if "--" in words:
+        cut = words.index("--")
+        words, command = words[:cut], words[cut + 1 :]
     try:
-        args = parser.parse_args(argv)
+        args = parser.parse_args(words)
     except SystemExit as exc:
         return int(exc.code or 0) if not isinstance(exc.code, str) else EXIT["usage"]
     if not getattr(args, "handler", None):
         parser.print_help(sys.stderr)
         return EXIT["usage"]
+    if command is not None:
+        if not hasattr(args, "command"):
+            return _usage("'--' starts a worker's COMMAND; this command takes none")
+        args.command = [*args.command, *command]
     try:
         return int(args.handler(args))
     except ClientError as exc:
@@ -234,7 +252,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = command("worker", "evaluate leased points with a command", WORKER_HELP)
     p.add_argument("id", metavar="ID", help="calibration id")
-    p.add_argument("command", metavar="COMMAND", nargs="+", help="the simulator, after '--'")
+    p.add_argument("command", metavar="COMMAND", nargs="*", help="the simulator, after '--'")
     p.add_argument("-j", "--jobs", type=int, default=1, metavar="N", help="runs at once")
     p.add_argument(
         "--run-timeout",
@@ -250,6 +268,15 @@ def build_parser() -> argparse.ArgumentParser:
         "again (default: 900, or --run-timeout plus 60 if longer)",
     )
     p.add_argument("--name", help="worker name shown in the runs table (default: host:pid)")
+    p.add_argument(
+        "--max-outage",
+        type=float,
+        default=MAX_OUTAGE,
+        metavar="S",
+        help="keep asking a server that answered before and is now down or failing for this "
+        "long before giving up "
+        "(default: %(default)g)",
+    )
     p.add_argument("-q", "--quiet", action="store_true", help="no progress line")
     p.set_defaults(handler=_worker)
 
@@ -263,6 +290,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("id", metavar="ID", help="calibration id")
     p.add_argument("--wait", action="store_true", help="wait until converged, exhausted or failed")
     p.add_argument("--timeout", type=float, metavar="S", help="give up waiting after S seconds")
+    p.add_argument(
+        "--max-outage",
+        type=float,
+        default=MAX_OUTAGE,
+        metavar="S",
+        help="with --wait: keep polling a server that answered before and is now down or "
+        "failing for this long before giving "
+        "up (default: %(default)g)",
+    )
     p.add_argument(
         "--interval", type=float, default=2.0, metavar="S", help="seconds between polls (default 2)"
     )
@@ -358,19 +394,25 @@ def _create(args: argparse.Namespace) -> int:
 
 
 def _worker(args: argparse.Namespace) -> int:
-    if args.jobs < 1:
-        return _usage("worker: -j must be at least 1")
-    if args.run_timeout is not None and args.run_timeout <= 0:
-        return _usage("worker: --run-timeout must be above 0")
+    if not args.command:
+        return _usage("worker: COMMAND is missing (give it after '--')")
+    if not 1 <= args.jobs <= MAX_JOBS:
+        return _usage(f"worker: -j must be from 1 to {MAX_JOBS}")
+    longest = MAX_LEASE_SECONDS - LEASE_MARGIN
+    if args.run_timeout is not None and not 0 < args.run_timeout <= longest:
+        return _usage(f"worker: --run-timeout must be above 0 and at most {longest:g} s")
+    if args.lease_seconds is not None and not 1 <= args.lease_seconds <= MAX_LEASE_SECONDS:
+        return _usage(f"worker: --lease-seconds must be from 1 to {MAX_LEASE_SECONDS:g}")
     lease = args.lease_seconds
     if lease is None:
-        lease = max(900.0, (args.run_timeout or 0.0) + 60.0)
+        lease = max(900.0, (args.run_timeout or 0.0) + LEASE_MARGIN)
     options = WorkerOptions(
         command=args.command,
         jobs=args.jobs,
         run_timeout=args.run_timeout,
         lease_seconds=lease,
         name=args.name or "",
+        max_outage=max(args.max_outage, 0.0),
     )
     with _client(args) as client:
         return _run_worker(client, args.id, options, quiet=args.quiet)
@@ -379,7 +421,12 @@ def _worker(args: argparse.Namespace) -> int:
 def _status(args: argparse.Namespace) -> int:
     with _client(args) as client:
         if args.wait:
-            info = client.wait(args.id, timeout=args.timeout, interval=max(args.interval, 0.1))
+            info = client.wait(
+                args.id,
+                timeout=args.timeout,
+                interval=max(args.interval, 0.1),
+                max_outage=max(args.max_outage, 0.0),
+            )
         else:
             info = client.calibration(args.id)
         status = str(info.get("status"))
@@ -408,7 +455,7 @@ def _budget_lines(client: Client, cid: str) -> list[str]:
     client.retry = RetryPolicy(attempts=1)
     try:
         summary = client.posterior(cid)
-    except (ClientError, ValueError):  # ValueError: an answer that is not JSON
+    except ClientError:
         return []
     diagnostics = summary.get("diagnostics") if isinstance(summary, dict) else None
     if not isinstance(diagnostics, dict):

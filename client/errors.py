@@ -32,6 +32,7 @@ __all__ = [
     "ConnectionFailed",
     "Forbidden",
     "NotFound",
+    "PayloadTooLarge",
     "ProblemError",
     "RateLimited",
     "ServerError",
@@ -109,6 +110,10 @@ class Conflict(ProblemError):
     """409: a different result is already recorded for this run."""
 
 
+class PayloadTooLarge(ProblemError):
+    """413: the request body is larger than the server accepts."""
+
+
 class RateLimited(ProblemError):
     """429: the server asks the client to slow down."""
 
@@ -123,6 +128,7 @@ _BY_STATUS: Mapping[int, type[ProblemError]] = {
     403: Forbidden,
     404: NotFound,
     409: Conflict,
+    413: PayloadTooLarge,
     422: ValidationFailed,
     429: RateLimited,
 }
@@ -149,7 +155,7 @@ def problem_from_response(
             str(body.get("title") or response.reason_phrase or "Error"),
             _text(body.get("detail")),
             str(body.get("type") or "about:blank"),
-            [e for e in errors if isinstance(e, Mapping)] if isinstance(errors, list) else None,
+            [e for e in errors if isinstance(e, dict)] if isinstance(errors, list) else None,
             retry_after,
         )
     snippet = " ".join(response.text.split())[:200]

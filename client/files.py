@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import csv
+import datetime
+import functools
 import io
 import json
 import math
@@ -36,7 +38,21 @@ def load_spec(path: str | Path) -> dict[str, Any]:
         raise SettingsError(f"{path} is not valid {kind}: {exc}") from None
     if not isinstance(data, dict):
         raise SettingsError(f"{path} must hold one spec object, got {type(data).__name__}")
+    _refuse_dates(data, path, ())
     return data
+
+
+def _refuse_dates(value: Any, path: Path, where: tuple[str | int, ...]) -> None:
+    """TOML's dates and times have no JSON form, and no spec field takes one."""
+    if isinstance(value, dict):
+        for key, item in value.items():
+            _refuse_dates(item, path, (*where, key))
+    elif isinstance(value, list):
+        for i, item in enumerate(value):
+            _refuse_dates(item, path, (*where, i))
+    elif isinstance(value, datetime.date | datetime.time):
+        field = ".".join(map(str, where))
+        raise SettingsError(f"{path}: {field} is a date or time; no spec field takes one")
 
 
 def read_runs(path: str | Path, calibration: Mapping[str, Any]) -> list[dict[str, Any]]:
@@ -62,6 +78,12 @@ def read_runs(path: str | Path, calibration: Mapping[str, Any]) -> list[dict[str
         runs = data.get("runs") if isinstance(data, dict) else data
         if not isinstance(runs, list):
             raise SettingsError(f"{path} must hold a list of runs or {{'runs': [...]}}")
+        for i, run in enumerate(runs):
+            if not isinstance(run, dict):
+                raise SettingsError(
+                    f"{path}: run {i} must be an object {{'parameters', 'outputs'}}, "
+                    f"got {type(run).__name__}"
+                )
         return runs
     return _runs_from_csv(text, calibration, path)
 
@@ -89,22 +111,23 @@ def _runs_from_csv(text: str, calibration: Mapping[str, Any], path: Path) -> lis
             continue
         if all(not (row.get(c) or "").strip() for c in columns[next(iter(sizes))].values()):
             continue
-        try:
-            parameters = {n: _number(row[n]) for n in names}
-            outputs = {
-                obs: [_number(row[columns[obs][i]]) for i in range(size)]
-                for obs, size in sizes.items()
-            }
-        except ValueError as exc:
-            raise SettingsError(f"{path}, line {line}: {exc}") from None
+        cell = functools.partial(_cell, row, f"{path}, line {line}")
+        parameters = {n: cell(n) for n in names}
+        outputs = {obs: [cell(columns[obs][i]) for i in range(size)] for obs, size in sizes.items()}
         runs.append({"parameters": parameters, "outputs": outputs})
     return runs
 
 
-def _number(text: str | None) -> float:
-    value = float((text or "").strip() or "nan")
+def _cell(row: Mapping[str, str | None], where: str, column: str) -> float:
+    """One CSV cell as a finite number; `SettingsError` naming the line and column if not."""
+    text = (row.get(column) or "").strip()
+    try:
+        value = float(text)
+    except ValueError:
+        value = math.nan
     if not math.isfinite(value):
-        raise ValueError(f"not a finite number: {text!r}")
+        shown = repr(text) if len(text) <= 40 else repr(text[:37] + "...")
+        raise SettingsError(f"{where}, column {column}: not a finite number: {shown}")
     return value
 
 

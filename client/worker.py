@@ -10,6 +10,10 @@ Stopping is gradual: the first `Worker.stop` stops leasing and lets the commands
 finish and be reported; the second terminates them and reports them as failed; the third
 abandons results the server has not yet acknowledged (their leases expire and the points are
 handed out again).
+
+A command that cannot start at all (not found, not executable) is a mistake in the worker's
+own setup, not a property of the point: the worker stops with that error and reports
+nothing for the run, whose lease then expires and whose point is handed out again.
 """
 
 from __future__ import annotations
@@ -31,13 +35,21 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
-from honing.client._client import FINISHED, Client
-from honing.client.errors import ClientError, Conflict, ValidationFailed
+from honing.client._client import FINISHED, MAX_OUTAGE, TRANSIENT, Client
+from honing.client.errors import (
+    ClientError,
+    Conflict,
+    PayloadTooLarge,
+    SettingsError,
+    ValidationFailed,
+)
 
 __all__ = ["Progress", "RunResult", "Worker", "WorkerOptions", "run_command", "substitute"]
 
 #: Characters of stderr kept in a failure message (the end of the stream).
 STDERR_TAIL = 2000
+#: Longest error message reported for a run (the server keeps up to 65,536 characters).
+ERROR_CHARS = 4000
 #: Seconds a terminated command gets before it is killed.
 KILL_GRACE = 5.0
 #: Seconds between progress refreshes from the server (round, validation error).
@@ -56,6 +68,7 @@ class WorkerOptions:
     lease_seconds: float = 900.0
     name: str = ""
     max_idle_wait: float = 5.0
+    max_outage: float = MAX_OUTAGE
 
 
 @dataclass(frozen=True)
@@ -78,6 +91,7 @@ class RunResult:
     run_id: str
     outputs: dict[str, list[float]] | None = None
     error: str | None = None
+    started: bool = True
 
 
 def substitute(args: Sequence[str], parameters: Mapping[str, Any]) -> list[str]:
@@ -88,6 +102,17 @@ def substitute(args: Sequence[str], parameters: Mapping[str, Any]) -> list[str]:
         return _text(parameters[name]) if name in parameters else match.group(0)
 
     return [_PLACEHOLDER.sub(one, a) for a in args]
+
+
+def parameter_environment(parameters: Mapping[str, Any]) -> dict[str, str]:
+    """``HONING_P_<name>`` for each parameter, and for a name with '-' or '.' also its alias
+    with '_' in their place, unless another parameter has that name exactly."""
+    exact = {f"HONING_P_{name}": _text(value) for name, value in parameters.items()}
+    aliases = {
+        f"HONING_P_{re.sub(r'[^A-Za-z0-9_]', '_', name)}": _text(value)
+        for name, value in parameters.items()
+    }
+    return {**{k: v for k, v in aliases.items() if k not in exact}, **exact}
 
 
 def run_command(
@@ -114,9 +139,7 @@ def run_command(
             HONING_OUTPUTS=str(outputs_path),
             HONING_RUN_ID=run_id,
         )
-        for name, value in parameters.items():
-            env[f"HONING_P_{name}"] = _text(value)
-            env[f"HONING_P_{re.sub(r'[^A-Za-z0-9_]', '_', name)}"] = _text(value)
+        env.update(parameter_environment(parameters))
         argv = substitute(command, parameters)
         with (here / "stdout").open("wb") as out, (here / "stderr").open("wb") as err:
             try:
@@ -129,7 +152,8 @@ def run_command(
                     start_new_session=True,
                 )
             except OSError as exc:
-                return RunResult(run_id, error=f"cannot start {argv[0]!r}: {exc.strerror or exc}")
+                why = f"cannot start {argv[0]!r}: {exc.strerror or exc}"
+                return RunResult(run_id, error=why, started=False)
             if started is not None:
                 started(proc)
             problem = _wait(proc, timeout, interrupted)
@@ -174,6 +198,8 @@ class Worker:
         self._finished: queue.Queue[tuple[str, str]] = queue.Queue()
         self._procs: dict[str, subprocess.Popen[bytes]] = {}
         self._lock = threading.Lock()
+        self._outage_since: float | None = None
+        self._reached = False
 
     @property
     def stops(self) -> int:
@@ -231,10 +257,25 @@ class Worker:
             lease = self.client.lease(
                 self.calibration_id, free, self.name, self.options.lease_seconds
             )
+        except TRANSIENT as exc:
+            # A server that answered before is down or failing: ride it out for
+            # `max_outage` seconds. One that never answered is a wrong address or token.
+            now = time.monotonic()
+            self._outage_since = self._outage_since or now
+            if self._reached and now - self._outage_since < self.options.max_outage:
+                return self.options.max_idle_wait
+            self.error = exc
+            return None
         except ClientError as exc:
             self.error = exc
             return None
+        self._outage_since = None
+        self._reached = True
         self._update(status=lease.status)
+        if self._stops and lease.runs:
+            # Granted while the worker was stopping (the request was in flight or retrying):
+            # not started, their leases expire and the points are handed out again.
+            return None
         for run in lease.runs:
             thread = threading.Thread(target=self._execute, args=(run,), daemon=True)
             active[str(run["run_id"])] = thread
@@ -248,18 +289,16 @@ class Worker:
         return min(max(hint, 0.1), self.options.max_idle_wait)
 
     def _execute(self, run: Mapping[str, Any]) -> None:
+        """Run one command and report it; always ends by queueing the run's outcome, so that
+        the loop never waits for a run whose thread died."""
         run_id = str(run["run_id"])
-        result = run_command(
-            self.options.command,
-            run,
-            self.options.run_timeout,
-            started=lambda proc: self._register(run_id, proc),
-            interrupted=lambda: self._stops >= 2,
-        )
-        with self._lock:
-            self._procs.pop(run_id, None)
         outcome = "error"
         try:
+            result = self._run(run_id, run)
+            if not result.started:
+                self.error = self.error or SettingsError(result.error or "cannot start")
+                self.stop()
+                return
             outcome = self._report(result)
         except ClientError as exc:
             if self.error is None:
@@ -267,20 +306,36 @@ class Worker:
         finally:
             self._finished.put((run_id, outcome))
 
+    def _run(self, run_id: str, run: Mapping[str, Any]) -> RunResult:
+        """`run_command`, with anything unexpected in it turned into the run's failure."""
+        try:
+            return run_command(
+                self.options.command,
+                run,
+                self.options.run_timeout,
+                started=lambda proc: self._register(run_id, proc),
+                interrupted=lambda: self._stops >= 2,
+            )
+        except Exception as exc:  # a thread that dies unreported would hold the loop forever
+            return RunResult(run_id, error=f"the worker failed to run the command: {exc!r}")
+        finally:
+            with self._lock:
+                self._procs.pop(run_id, None)
+
     def _report(self, result: RunResult) -> str:
         cid, rid = self.calibration_id, result.run_id
+        error = result.error or "failed"
         if result.outputs is not None:
             try:
                 self.client.report(cid, rid, outputs=result.outputs)
                 return "done"
-            except ValidationFailed as exc:
-                # The outputs do not fit the spec (names, lengths): record why, as a failure.
-                self.client.report(cid, rid, error=f"outputs refused by the server: {exc}")
-                return "failed"
+            except (ValidationFailed, PayloadTooLarge) as exc:
+                # The outputs do not fit the spec (names, lengths, size): a failed run.
+                error = f"outputs refused by the server: {exc}"
             except Conflict:
                 return "conflict"
         try:
-            self.client.report(cid, rid, error=result.error or "failed")
+            self.client.report(cid, rid, error=_shortened(error))
         except Conflict:
             return "conflict"
         return "failed"
@@ -292,10 +347,14 @@ class Worker:
             _terminate(proc)
 
     def _terminate_all(self) -> None:
+        """Terminate every command at once: each may take its whole grace period."""
         with self._lock:
             procs = list(self._procs.values())
-        for proc in procs:
-            _terminate(proc)
+        threads = [threading.Thread(target=_terminate, args=(p,), daemon=True) for p in procs]
+        for thread in threads:
+            thread.start()
+        for thread in threads:
+            thread.join()
 
     def _collect(self, active: dict[str, threading.Thread], wait: float = 0.0) -> None:
         """Count the runs reported since the last call, waiting up to ``wait`` s for one."""
@@ -338,6 +397,15 @@ class Worker:
             self.progress = new
             if self.on_progress is not None:
                 self.on_progress(new)
+
+
+def _shortened(message: str) -> str:
+    """A run's error message cut to `ERROR_CHARS`, keeping its start and its end."""
+    if len(message) <= ERROR_CHARS:
+        return message
+    marker = f" [... {len(message)} characters in all ...] "
+    keep = (ERROR_CHARS - len(marker)) // 2
+    return message[:keep] + marker + message[-keep:]
 
 
 def _text(value: Any) -> str:
@@ -444,10 +512,21 @@ def _read_outputs(path: Path) -> tuple[dict[str, list[float]] | None, str]:
         if not isinstance(values, list):
             return None, f"outputs[{name!r}] must be a list of numbers"
         for i, v in enumerate(values):
-            if not isinstance(v, int | float) or isinstance(v, bool) or not math.isfinite(v):
-                return None, f"outputs[{name!r}][{i}] is not a finite number: {v!r}"
+            if not _finite_number(v):
+                shown = repr(v) if len(repr(v)) <= 40 else repr(v)[:37] + "..."
+                return None, f"outputs[{name!r}][{i}] is not a finite number: {shown}"
         outputs[str(name)] = [float(v) for v in values]
     return outputs, ""
+
+
+def _finite_number(value: Any) -> bool:
+    """A JSON number a float holds finitely (an integer of 400 digits does not)."""
+    if not isinstance(value, int | float) or isinstance(value, bool):
+        return False
+    try:
+        return math.isfinite(value)
+    except OverflowError:
+        return False
 
 
 def _tail(path: Path) -> str:

@@ -1,0 +1,232 @@
+"""The worker and the command line when things go wrong: odd outputs, oversized results, a
+command that cannot start, a server that goes away for a while, awkward command lines and
+files. Each runs the real command line as a subprocess against a fake server."""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from honing.client.worker import ERROR_CHARS, parameter_environment
+
+CAL = "/v1/calibrations/c1"
+RUN = {"run_id": "r1", "parameters": {"a": 1.0}}
+SERVICE_UNAVAILABLE = {"title": "Service Unavailable", "status": 503, "detail": "restarting"}
+
+
+def one_run_then(fake_server: Any, final: str = "budget_exhausted") -> None:
+    """The server leases r1 once, then says the calibration is ``final``."""
+    leases = iter([{"runs": [RUN], "status": "collecting"}])
+    fake_server.on_call(
+        "POST", f"{CAL}/runs", lambda body: (200, next(leases, {"runs": [], "status": final}), {})
+    )
+
+
+def writes(outputs_json: str) -> list[str]:
+    """A command that writes this text as its outputs file."""
+    code = f"import os; open(os.environ['HONING_OUTPUTS'], 'w').write({outputs_json!r})"
+    return [sys.executable, "-c", code]
+
+
+def test_an_integer_beyond_floats_fails_the_run_and_the_worker_goes_on(
+    fake_server: Any, cli: Any
+) -> None:
+    # float(10**400) overflows; the run's thread used to die unreported and the worker
+    # waited for it forever.
+    one_run_then(fake_server)
+    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "failed", "trust": None})
+    big = "1" + "0" * 400
+    result = cli(
+        "worker", "c1", "-q", "--", *writes(f'{{"y": [{big}, 1]}}'), url=fake_server.url, token="t"
+    )
+    assert result.returncode == 3, result.stderr
+    (put,) = fake_server.bodies("PUT", f"{CAL}/runs/r1")
+    assert put["error"].startswith("outputs['y'][0] is not a finite number: 1000")
+    assert len(put["error"]) < 200
+
+
+@pytest.mark.parametrize("status", [413, 422])
+def test_a_refused_result_is_reported_as_a_short_failure(
+    fake_server: Any, cli: Any, status: int
+) -> None:
+    # 413: a body over the server's limit; 422 with a detail of 100,000 characters. Both
+    # become a failed run whose message fits the server's cap (65,536), and the worker
+    # goes on to exit 3 when the budget is spent.
+    one_run_then(fake_server)
+    detail = "x" * 100_000
+
+    def report(body: dict[str, Any]) -> tuple[int, Any, dict[str, str]]:
+        if "outputs" in body:
+            return status, {"title": "Refused", "status": status, "detail": detail}, {}
+        return 200, {"run_id": "r1", "state": "failed", "trust": None}, {}
+
+    fake_server.on_call("PUT", f"{CAL}/runs/r1", report)
+    result = cli("worker", "c1", "-q", "--", *writes('{"y": [1]}'), url=fake_server.url, token="t")
+    assert result.returncode == 3, result.stderr
+    error = fake_server.bodies("PUT", f"{CAL}/runs/r1")[1]["error"]
+    assert error.startswith(f"outputs refused by the server: Refused ({status})")
+    assert len(error) <= ERROR_CHARS and "characters in all ...]" in error
+
+
+def test_a_command_that_cannot_start_stops_the_worker_and_reports_nothing(
+    fake_server: Any, cli: Any, one_line_error: Any
+) -> None:
+    # A typing mistake, not a property of the point: no run is reported failed (each would
+    # tell the server's failure model a lie, and the budget would burn on them).
+    fake_server.on("POST", f"{CAL}/runs", {"runs": [RUN], "status": "collecting"})
+    result = cli(
+        "worker", "c1", "-q", "--", "/nonexistent/simulator", "{a}", url=fake_server.url, token="t"
+    )
+    assert result.returncode == 1
+    one_line_error(result, "cannot start '/nonexistent/simulator'")
+    assert fake_server.bodies("PUT", CAL) == []
+    assert len(fake_server.bodies("POST", f"{CAL}/runs")) == 1
+
+
+def test_the_shell_safe_alias_never_overwrites_another_parameter() -> None:
+    env = parameter_environment({"k_1": 0.25, "k-1": 10.5, "x.y": 2.0})
+    assert env["HONING_P_k_1"] == "0.25"  # k-1's alias would be HONING_P_k_1 too
+    assert env["HONING_P_k-1"] == "10.5"
+    assert env["HONING_P_x_y"] == env["HONING_P_x.y"] == "2.0"
+
+
+def test_the_worker_rides_out_a_server_restart(fake_server: Any, cli: Any) -> None:
+    # After one answer the server is unavailable for 12 lease requests (each call retries
+    # 5 times, Retry-After 0), then answers again; the worker carries on and finishes.
+    answers = iter(
+        [(200, {"runs": [], "status": "fitting"}, {"Retry_After": "0"})]
+        + [(503, SERVICE_UNAVAILABLE, {"Retry_After": "0"})] * 12
+    )
+    fake_server.on_call(
+        "POST",
+        f"{CAL}/runs",
+        lambda body: next(answers, (200, {"runs": [], "status": "converged"}, {})),
+    )
+    result = cli("worker", "c1", "-q", "--", "true", url=fake_server.url, token="t")
+    assert result.returncode == 0, result.stderr
+    assert len(fake_server.bodies("POST", f"{CAL}/runs")) == 14
+
+
+def test_an_outage_longer_than_allowed_ends_the_worker(
+    fake_server: Any, cli: Any, one_line_error: Any
+) -> None:
+    answers = iter([(200, {"runs": [], "status": "fitting"}, {"Retry_After": "0"})])
+    fake_server.on_call(
+        "POST",
+        f"{CAL}/runs",
+        lambda body: next(answers, (503, SERVICE_UNAVAILABLE, {"Retry_After": "0"})),
+    )
+    result = cli(
+        "worker", "c1", "-q", "--max-outage", "0", "--", "true", url=fake_server.url, token="t"
+    )
+    assert result.returncode == 1
+    one_line_error(result, "Service Unavailable (503)")
+
+
+def test_status_wait_rides_out_a_server_restart(fake_server: Any, cli: Any) -> None:
+    collecting = {"id": "c1", "status": "collecting", "round": 1}
+    answers = iter(
+        [(200, collecting, {})] + [(503, SERVICE_UNAVAILABLE, {"Retry_After": "0"})] * 12
+    )
+    fake_server.on_call(
+        "GET", CAL, lambda body: next(answers, (200, {**collecting, "status": "converged"}, {}))
+    )
+    result = cli("status", "c1", "--wait", "--interval", "0.1", url=fake_server.url, token="t")
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.startswith("c1  converged")
+
+
+def test_status_wait_on_a_server_that_never_answered_fails_at_once(
+    fake_server: Any, cli: Any, one_line_error: Any
+) -> None:
+    fake_server.on("GET", CAL, SERVICE_UNAVAILABLE, status=503, Retry_After="0")
+    result = cli("status", "c1", "--wait", url=fake_server.url, token="t")
+    assert result.returncode == 1
+    one_line_error(result, "Service Unavailable (503)")
+    assert len(fake_server.bodies("GET", CAL)) == 5  # one call's attempts, no more
+
+
+@pytest.mark.parametrize("options", [[], ["-q"]])
+def test_a_second_double_dash_reaches_the_command(
+    fake_server: Any, cli: Any, tmp_path: Path, options: list[str]
+) -> None:
+    # Everything after the first '--' is the command, wherever the worker's options are.
+    one_run_then(fake_server, "converged")
+    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "done", "trust": 1.0})
+    seen = tmp_path / "argv.json"
+    code = (
+        "import json, os, sys; json.dump(sys.argv[1:], open(sys.argv[-1], 'w'));"
+        "json.dump({'y': [1]}, open(os.environ['HONING_OUTPUTS'], 'w'))"
+    )
+    command = [sys.executable, "-c", code, "--", "--velocity", "{a}", str(seen)]
+    result = cli("worker", "c1", *options, "--", *command, url=fake_server.url, token="t")
+    assert result.returncode == 0, result.stderr
+    assert json.loads(seen.read_text()) == ["--", "--velocity", "1.0", str(seen)]
+
+
+@pytest.mark.parametrize(
+    ("options", "named"),
+    [
+        (["-j", "1001"], "-j"),
+        (["--run-timeout", "604800"], "--run-timeout"),
+        (["--lease-seconds", "0.5"], "--lease-seconds"),
+        ([], "COMMAND"),
+    ],
+)
+def test_worker_options_out_of_range_are_usage_errors(
+    cli: Any, options: list[str], named: str
+) -> None:
+    command = [] if named == "COMMAND" else ["--", "true"]
+    result = cli("worker", "c1", *options, *command, url="http://127.0.0.1:9", token="t")
+    assert result.returncode == 2
+    assert named in result.stderr and "Traceback" not in result.stderr
+
+
+def test_an_answer_that_is_not_json_is_one_line(
+    fake_server: Any, cli: Any, one_line_error: Any
+) -> None:
+    # Some other service at the address, answering 200 with a page.
+    fake_server.on("GET", CAL, "<html>a login page</html>")
+    result = cli("status", "c1", url=fake_server.url, token="t")
+    assert result.returncode == 1
+    one_line_error(result, "expected a JSON object", "is this a honing server?")
+
+
+@pytest.mark.parametrize(
+    ("name", "content", "fragment"),
+    [
+        ("runs.json", "[1, 2]", "run 0 must be an object"),
+        ("runs.json", '{"runs": ["ab"]}', "run 0 must be an object"),
+        ("runs.csv", "a,y[0]\n1.0,2.0\n,3.0\n", "line 3, column a: not a finite number: ''"),
+        ("runs.csv", "a,y[0]\n1.0,abc\n", "line 2, column y[0]: not a finite number: 'abc'"),
+    ],
+)
+def test_import_files_with_odd_content_are_one_line(
+    fake_server: Any,
+    cli: Any,
+    one_line_error: Any,
+    tmp_path: Path,
+    name: str,
+    content: str,
+    fragment: str,
+) -> None:
+    spec = {"parameters": [{"name": "a"}], "observations": [{"name": "y", "values": [1.0]}]}
+    fake_server.on("GET", CAL, {"id": "c1", "status": "collecting", "spec": spec})
+    path = tmp_path / name
+    path.write_text(content)
+    result = cli("import", "c1", str(path), url=fake_server.url, token="t")
+    assert result.returncode == 1
+    one_line_error(result, fragment)
+    assert fake_server.bodies("POST", f"{CAL}/runs/import") == []
+
+
+def test_a_toml_spec_with_a_date_is_one_line(cli: Any, one_line_error: Any, tmp_path: Path) -> None:
+    spec = tmp_path / "spec.toml"
+    spec.write_text('name = "column"\n[notes]\nmeasured_on = 2024-05-01\n')
+    result = cli("create", str(spec), url="http://127.0.0.1:9")
+    assert result.returncode == 1
+    one_line_error(result, "notes.measured_on is a date or time")

@@ -269,7 +269,7 @@ class CalibrationService:
         text = self.store.get_spec(calibration_id)
         if text is None:
             raise NotFound(f"calibration {calibration_id!r} does not exist")
-        spec = CalibrationSpec.from_dict(json.loads(text))
+        spec = CalibrationSpec.from_dict(json.loads(text), stored=True)
         with self._lock:
             self._specs[calibration_id] = spec
             while len(self._specs) > _CACHE_SIZE:

@@ -87,6 +87,8 @@ example:
 """
 
 FINISHED_EXIT = {"converged": 0, "budget_exhausted": 3, "failed": 5}
+#: How the engine's warning about a spent budget begins (after "warning: ").
+_SPENT = "warning: run budget spent"
 #: The server's bounds on one lease request (API.md): runs at once, and seconds held.
 MAX_JOBS = 1000
 MAX_LEASE_SECONDS = 604_800.0
@@ -98,10 +100,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit status."""
     parser = build_parser()
     words = list(sys.argv[1:] if argv is None else argv)
-    # Everything after the first '--' is the worker's COMMAND, verbatim: argparse would drop
-    # a second '--' inside it, or not, depending on where the worker's options stand.
+    # After 'worker', everything after the first '--' is its COMMAND, verbatim: argparse
+    # would drop a second '--' inside it, or not, depending on where the options stand.
+    # Elsewhere '--' keeps its usual meaning for argparse (the end of options).
     command: list[str] | None = None
-    if "--" in words:
+    if "--" in words and "worker" in words[: words.index("--")]:
         cut = words.index("--")
         words, command = words[:cut], words[cut + 1 :]
     try:
@@ -112,8 +115,6 @@ def main(argv: Sequence[str] | None = None) -> int:
         parser.print_help(sys.stderr)
         return EXIT["usage"]
     if command is not None:
-        if not hasattr(args, "command"):
-            return _usage("'--' starts a worker's COMMAND; this command takes none")
         args.command = [*args.command, *command]
     try:
         return int(args.handler(args))
@@ -460,11 +461,14 @@ def _budget_lines(client: Client, cid: str) -> list[str]:
     diagnostics = summary.get("diagnostics") if isinstance(summary, dict) else None
     if not isinstance(diagnostics, dict):
         return []
+    if "unmet_conditions" not in diagnostics:  # a posterior stored before the field existed
+        warnings = [w for w in warning_lines(summary) if w.startswith(_SPENT)]
+        return warnings[:1]
     lines = []
     reasons = diagnostics.get("unmet_conditions")
     if isinstance(reasons, list) and reasons:
         reason = "; ".join(map(str, reasons))
-        lines.append(f"warning: run budget spent before convergence: {reason}")
+        lines.append(f"{_SPENT} before convergence: {reason}")
     least = diagnostics.get("suggested_max_runs")
     if isinstance(least, int) and not isinstance(least, bool):
         lines.append(f"to go on, raise the budget: honing budget {cid} {least}")

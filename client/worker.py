@@ -297,7 +297,8 @@ class Worker:
             result = self._run(run_id, run)
             if not result.started:
                 self.error = self.error or SettingsError(result.error or "cannot start")
-                self.stop()
+                if not self._stops:  # one stop however many runs fail to start: a further
+                    self.stop()  # one would terminate the commands that did start
                 return
             outcome = self._report(result)
         except ClientError as exc:

@@ -57,6 +57,9 @@ _FAMILIES: tuple[Family, ...] = ("legendre", "hermite")
 #: Narrowest and widest prior sd accepted: squares and reciprocals of posterior spreads then
 #: stay far inside the float range whatever the data do.
 SD_RANGE = (1e-150, 1e150)
+#: Log width of a log-uniform prior beyond which e^-w is below double rounding, so that its
+#: sd takes the wide-range form.
+_WIDE_LOG_WIDTH = 40.0
 #: Upper probability of the central range a prior must keep finite (its 0.05% to 99.95%
 #: points, the range the report plots).
 CENTRAL_MASS = 0.9995
@@ -402,12 +405,20 @@ class LogUniform(Prior):
 
     @property
     def _log_width(self) -> float:
-        """``log(high / low)``, finite for any positive floats (the ratio itself may not be)."""
-        return math.log(self.high) - math.log(self.low)
+        """``log(high / low)``: from the ratio, exact for close bounds, or as a difference of
+        logs when the ratio overflows (bounds hundreds of decades apart)."""
+        ratio = self.high / self.low
+        return math.log(ratio) if math.isfinite(ratio) else math.log(self.high) - math.log(self.low)
 
     def to_reference(self, x: np.ndarray) -> np.ndarray:
         x = np.asarray(x, dtype=float)
-        xi = 2.0 * (_log_positive(x) - math.log(self.low)) / self._log_width - 1.0
+        with np.errstate(over="ignore"):
+            ratio = x / self.low
+        # log(x / low) as the width is taken, so that the bounds map to -1 and 1 exactly
+        log_ratio = np.where(
+            np.isfinite(ratio), _log_positive(ratio), _log_positive(x) - math.log(self.low)
+        )
+        xi = 2.0 * log_ratio / self._log_width - 1.0
         return _clip_where(xi, self.in_support(x), -1.0, 1.0)
 
     def from_reference(self, xi: np.ndarray) -> np.ndarray:
@@ -434,10 +445,29 @@ class LogUniform(Prior):
 
     @property
     def sd(self) -> float:
-        # E[x^2] = mean * (low + high) / 2, so the variance factors as below; the bracket is the
-        # arithmetic minus the logarithmic mean of low and high, which is positive.
-        # (square roots apart, so that a range of hundreds of decades does not overflow)
-        return math.sqrt(self.mean) * math.sqrt(0.5 * self.low + 0.5 * self.high - self.mean)
+        # With w = log(high / low) and E = expm1(w), x = low e^(t w) for t uniform on (0, 1)
+        # has variance low^2 E g / (2 w^2), g = w (E + 2) - 2 E = sum_{k>=3} (k-2) w^k / k!.
+        # The series has no cancellation for close bounds, where E[x^2] - mean^2 loses every
+        # digit; for wide ones E overflows before high does, and e^-w is below rounding.
+        w = self._log_width
+        if w > _WIDE_LOG_WIDTH:
+            return self.high * math.sqrt(w - 2.0) / (math.sqrt(2.0) * w)
+        e = math.expm1(w)
+        return self.low * math.sqrt(e * _log_uniform_excess(w, e) / 2.0) / w
+
+
+def _log_uniform_excess(w: float, e: float) -> float:
+    """``w (e + 2) - 2 e`` for ``e = expm1(w)``: by its series below w = 1, where the closed
+    form cancels, and the closed form above."""
+    if w >= 1.0:
+        return w * (e + 2.0) - 2.0 * e
+    total, term = 0.0, w**2 / 2.0  # term = w^k / k!
+    for k in range(3, 30):
+        term *= w / k
+        total += (k - 2) * term
+        if (k - 2) * term < 1e-17 * total:
+            break
+    return total
 
 
 @dataclass(frozen=True)
@@ -535,7 +565,9 @@ def _number(value: Any) -> float | None:
         return math.inf
 
 
-def prior_from_dict(data: Mapping[str, Any], loc: tuple[str | int, ...] = ("prior",)) -> Prior:
+def prior_from_dict(
+    data: Mapping[str, Any], loc: tuple[str | int, ...] = ("prior",), *, check_scale: bool = True
+) -> Prior:
     """Read and validate a prior from its JSON object.
 
     Parameters
@@ -546,6 +578,9 @@ def prior_from_dict(data: Mapping[str, Any], loc: tuple[str | int, ...] = ("prio
         sigma_log), ``truncnormal`` (mean, sd, low, high), ``loguniform`` (low, high).
     loc : tuple of str or int
         Location of `data` in the enclosing document; error locations extend it.
+    check_scale : bool
+        Refuse a prior whose spread floating point cannot hold (see `SD_RANGE`); off only
+        for priors accepted before that check existed.
 
     Returns
     -------
@@ -588,7 +623,7 @@ def prior_from_dict(data: Mapping[str, Any], loc: tuple[str | int, ...] = ("prio
     if problems:
         raise SpecError([((*loc, name), msg) for name, msg in problems])
     prior = cls._from_params(params)
-    scale = _scale_problem(prior)
+    scale = _scale_problem(prior) if check_scale else None
     if scale:
         raise SpecError.at(loc, scale)
     return prior
@@ -606,7 +641,10 @@ def _scale_problem(prior: Prior) -> str | None:
             mean, sd = float(prior.mean), float(prior.sd)
             ends = prior.ppf(np.array([1.0 - CENTRAL_MASS, CENTRAL_MASS]))
         except (OverflowError, ValueError, ZeroDivisionError):
-            mean, sd, ends = math.inf, math.inf, np.array([math.inf])
+            return (
+                "too wide or too narrow for floating-point arithmetic: its mean and sd cannot "
+                f"be computed; the sd must lie between {low:g} and {high:g}"
+            )
     if math.isfinite(mean) and low <= sd <= high and np.all(np.isfinite(ends)):
         return None
     return (

@@ -6,6 +6,7 @@ documented defaults; `to_dict` gives the normalised form back. Every error names
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
@@ -197,8 +198,13 @@ class CalibrationSpec:
         return theta
 
     @classmethod
-    def from_dict(cls, data: Mapping[str, Any]) -> CalibrationSpec:
-        """Validate a spec mapping and fill defaults; raises `SpecError` listing every bad field."""
+    def from_dict(cls, data: Mapping[str, Any], *, stored: bool = False) -> CalibrationSpec:
+        """Validate a spec mapping and fill defaults; raises `SpecError` listing every bad field.
+
+        ``stored`` reads back a spec accepted earlier: the checks on parameters added since
+        (a prior's floating-point range, the unit's length, the reserved name) are left out,
+        so that a calibration created before them still opens.
+        """
         if not isinstance(data, Mapping):
             raise SpecError.at((), "the spec must be an object")
         errors: list[tuple[tuple[str | int, ...], str]] = []
@@ -216,7 +222,9 @@ class CalibrationSpec:
         name = data.get("name")
         if not isinstance(name, str) or not name.strip() or len(name) > 200:
             errors.append((("name",), "must be a non-empty string of at most 200 characters"))
-        parameters = _collect(errors, _parameters, data.get("parameters"))
+        parameters = _collect(
+            errors, functools.partial(_parameters, stored=stored), data.get("parameters")
+        )
         observations = _collect(errors, _observations, data.get("observations"))
         noise = _section(errors, data, "noise", {"scale"})
         scale = noise.get("scale", "fixed")
@@ -359,7 +367,7 @@ def _check_name(name: Any, loc: tuple[str | int, ...]) -> str:
     return name
 
 
-def _parameters(value: Any) -> tuple[Parameter, ...]:
+def _parameters(value: Any, stored: bool = False) -> tuple[Parameter, ...]:
     if not isinstance(value, Sequence) or isinstance(value, str) or not value:
         raise SpecError.at(("parameters",), "must be a non-empty list")
     if len(value) > LIMITS["parameters"]:
@@ -378,9 +386,10 @@ def _parameters(value: Any) -> tuple[Parameter, ...]:
             name = _check_name(item.get("name"), (*loc, "name"))
             if "prior" not in item:
                 raise SpecError.at((*loc, "prior"), "missing")
-            prior = prior_from_dict(item["prior"], (*loc, "prior"))
+            prior = prior_from_dict(item["prior"], (*loc, "prior"), check_scale=not stored)
             unit = item.get("unit")
-            if unit is not None and not (isinstance(unit, str) and len(unit) <= MAX_UNIT_CHARS):
+            longest = math.inf if stored else MAX_UNIT_CHARS
+            if unit is not None and not (isinstance(unit, str) and len(unit) <= longest):
                 raise SpecError.at(
                     (*loc, "unit"), f"must be a string of at most {MAX_UNIT_CHARS} characters"
                 )
@@ -396,7 +405,7 @@ def _parameters(value: Any) -> tuple[Parameter, ...]:
     errors.extend(
         (("parameters", i, "name"), f"{n!r} is reserved for the estimated noise scale")
         for i, n in enumerate(names)
-        if n == NOISE_SCALE_NAME
+        if n == NOISE_SCALE_NAME and not stored
     )
     if errors:
         raise SpecError(errors)

@@ -161,7 +161,7 @@ def state_from_bytes(blob: bytes) -> EngineState:
     try:
         (n_head,) = struct.unpack_from("<Q", blob, 0)
         header = json.loads(blob[8 : 8 + n_head].decode())
-    except (struct.error, UnicodeDecodeError, json.JSONDecodeError) as exc:
+    except (struct.error, UnicodeDecodeError, json.JSONDecodeError, RecursionError) as exc:
         raise StateError(f"unreadable state header: {exc}") from exc
     if not isinstance(header, dict):
         raise StateError("unreadable state header: not an object")
@@ -169,7 +169,7 @@ def state_from_bytes(blob: bytes) -> EngineState:
         raise StateError(f"state version {header.get('version')!r}, expected {STATE_VERSION}")
     try:
         return _read_state(header, memoryview(blob)[8 + n_head :])
-    except (KeyError, TypeError, ValueError, AttributeError) as exc:
+    except (KeyError, TypeError, ValueError, AttributeError, OverflowError) as exc:
         raise StateError(f"malformed state: {exc!r}") from exc
 
 
@@ -180,9 +180,10 @@ def _read_state(header: dict[str, Any], body: memoryview) -> EngineState:
         if spec["dtype"] not in _ALLOWED_DTYPES:
             raise StateError(f"array {name!r} has unsupported dtype {spec['dtype']!r}")
         dtype = np.dtype(spec["dtype"])
-        shape, offset = [int(n) for n in spec["shape"]], int(spec["offset"])
-        if offset < 0 or any(n < 0 for n in shape):
-            raise StateError(f"array {name!r} has a negative offset or size")
+        shape, offset = spec["shape"], spec["offset"]
+        whole = [offset, *shape]
+        if not all(isinstance(n, int) and not isinstance(n, bool) and n >= 0 for n in whole):
+            raise StateError(f"array {name!r} needs whole, non-negative offset and sizes")
         end = offset + math.prod(shape) * dtype.itemsize
         if end > len(body):
             raise StateError(f"array {name!r} runs past the end of the state")

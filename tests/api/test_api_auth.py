@@ -1,9 +1,11 @@
+import json
 from pathlib import Path
 
 import pytest
 from helpers_api import SPEC, AppClient, Calibration, create, lease, make_client, report
 
 from honing.api.settings import Settings
+from honing.engine import spec as spec_module
 
 
 def assert_problem(response, status: int) -> dict:  # type: ignore[no-untyped-def]
@@ -107,3 +109,18 @@ def test_a_calibration_deleted_on_one_replica_is_gone_on_another(settings: Setti
         # 404 whatever the token, as for an id never created (API.md), not 401 or 403
         for headers in ({}, {"Authorization": "Bearer not-the-token"}):
             assert_problem(second.get(cal.url, headers=headers), 404)
+
+
+def test_a_calibration_stored_before_a_stricter_rule_still_opens(
+    settings: Settings, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # A replica started after an upgrade reads specs stored before it: the checks added
+    # since (here: a shorter unit limit) must not refuse them on every request.
+    with make_client(settings) as first:
+        cal = create(first)  # the offset's unit is "m"
+    monkeypatch.setattr(spec_module, "MAX_UNIT_CHARS", 0)
+    with make_client(settings) as second:
+        assert second.get(cal.url, headers=cal.headers).status_code == 200
+        assert lease(second, cal)
+        spec = json.loads(json.dumps(SPEC))
+        assert second.post("/v1/calibrations", json=spec).status_code == 422

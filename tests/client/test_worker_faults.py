@@ -230,3 +230,57 @@ def test_a_toml_spec_with_a_date_is_one_line(cli: Any, one_line_error: Any, tmp_
     result = cli("create", str(spec), url="http://127.0.0.1:9")
     assert result.returncode == 1
     one_line_error(result, "notes.measured_on is a date or time")
+
+
+def test_runs_that_cannot_start_stop_the_worker_once(
+    fake_server: Any, cli: Any, tmp_path: Path
+) -> None:
+    # Three runs at once; the command's name depends on the run ({a}), and only sim1.0
+    # exists. The two that cannot start stop the worker once, not twice: a second stop
+    # would terminate the healthy run, which must finish and be reported done.
+    sim = tmp_path / "sim1.0"
+    sim.write_text(
+        '#!/bin/sh\nsleep 1\nprintf \'{"y": [1]}\' > "$HONING_OUTPUTS"\n', encoding="utf-8"
+    )
+    sim.chmod(0o755)
+    runs = [{"run_id": f"r{i}", "parameters": {"a": float(i)}} for i in (1, 2, 3)]
+    fake_server.on("POST", f"{CAL}/runs", {"runs": runs, "status": "collecting"})
+    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "done", "trust": 1.0})
+    result = cli(
+        "worker",
+        "c1",
+        "-q",
+        "-j",
+        "3",
+        "--",
+        str(tmp_path / "sim{a}"),
+        url=fake_server.url,
+        token="t",
+    )
+    assert result.returncode == 1
+    assert "cannot start" in result.stderr
+    assert fake_server.bodies("PUT", f"{CAL}/runs/r1") == [{"outputs": {"y": [1.0]}}]
+    assert fake_server.bodies("PUT", f"{CAL}/runs/r2") == []
+    assert fake_server.bodies("PUT", f"{CAL}/runs/r3") == []
+
+
+def test_a_double_dash_keeps_its_usual_meaning_for_other_commands(
+    fake_server: Any, cli: Any
+) -> None:
+    fake_server.on("GET", CAL, {"id": "c1", "status": "converged", "round": 3})
+    result = cli("status", "--", "c1", url=fake_server.url, token="t")
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.startswith("c1  converged")
+
+
+def test_status_falls_back_to_the_warning_of_a_posterior_stored_earlier(
+    fake_server: Any, cli: Any
+) -> None:
+    # Posteriors stored before the structured fields carry only the warning's text.
+    fake_server.on("GET", CAL, {"id": "c1", "status": "budget_exhausted", "round": 4})
+    reason = "run budget spent before convergence: round 4 had no earlier posterior"
+    diagnostics = {"warnings": ["prior check: fine", reason]}
+    fake_server.on("GET", f"{CAL}/posterior", {"diagnostics": diagnostics})
+    result = cli("status", "c1", url=fake_server.url, token="t")
+    assert result.returncode == 3
+    assert result.stderr == f"warning: {reason}\n"

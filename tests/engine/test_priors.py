@@ -338,3 +338,16 @@ def test_support_endpoints_map_onto_the_reference_interval_exactly() -> None:
             xi = prior.to_reference(np.array([low, high]))
             assert_array_equal(xi, [-1.0, 1.0])
             assert prior.in_support(prior.from_reference(xi)).all()
+
+
+@pytest.mark.parametrize(("low", "high"), [(3.0, 3.00003), (10.0, 10.0001), (1e5, 1.00001e5)])
+def test_a_narrow_loguniform_keeps_its_sd_and_is_accepted(low: float, high: float) -> None:
+    # E[x^2] - mean^2 cancels every digit for close bounds (it gave 0.386 for 1e5..1.00001e5,
+    # and refused the others). Reference: scipy.integrate.quad of the centred second moment
+    # in t = log(x / low) / w on [0, 1]; the difference inside loses about eps / w relative,
+    # so 1e-8 is loose enough for w down to 1e-5.
+    w = math.log(high / low)
+    mean = (high - low) / w
+    var, _ = integrate.quad(lambda t: (low * math.exp(t * w) - mean) ** 2, 0.0, 1.0)
+    prior = prior_from_dict({"kind": "loguniform", "low": low, "high": high}, LOC)
+    assert prior.sd == pytest.approx(math.sqrt(var), rel=1e-8)

@@ -168,3 +168,22 @@ def test_outputs_too_far_from_the_data_for_a_fit_are_refused():
         spec.flatten_outputs({"port_1": [1, 2, 3], "port_2": [4, -1e200]})
     assert _locs(exc_info) == [("outputs", "port_2", 1)]
     assert "report a diverged run as failed" in exc_info.value.errors[0]["msg"]
+
+
+def test_a_stored_spec_opens_under_the_rules_it_was_stored_with():
+    # Checks added later (the reserved name, the unit's length, a prior's floating-point
+    # range) refuse new specs, but a calibration stored before them must still open.
+    data = _spec()
+    data["parameters"][0]["name"] = "noise_scale"
+    data["parameters"][1]["unit"] = "m" * 100
+    tiny = {"kind": "normal", "mean": 0.0, "sd": 1e-200}
+    data["parameters"].append({"name": "tiny", "prior": tiny})
+    with pytest.raises(SpecError) as exc_info:
+        CalibrationSpec.from_dict(data)
+    assert set(_locs(exc_info)) == {
+        ("parameters", 0, "name"),
+        ("parameters", 1, "unit"),
+        ("parameters", 2, "prior"),
+    }
+    spec = CalibrationSpec.from_dict(data, stored=True)
+    assert spec.names == ["noise_scale", "dispersivity", "tiny"]

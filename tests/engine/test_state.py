@@ -70,6 +70,13 @@ def _damaged(blob: bytes, how: str) -> bytes:
         header["arrays"]["pool"]["shape"] = ["a"]
     elif how == "arrays not an object":
         header["arrays"] = 3
+    elif how == "huge shape":
+        header["arrays"]["pool"]["shape"] = [1e400]
+    elif how == "fractional offset":
+        header["arrays"]["pool"]["offset"] = 0.5
+    elif how == "deep header":
+        head = b"[" * 100_000 + b"]" * 100_000
+        return struct.pack("<Q", len(head)) + head + body
     return _with_header(header, body)
 
 
@@ -82,6 +89,9 @@ def _damaged(blob: bytes, how: str) -> bytes:
         "negative shape",
         "shape of strings",
         "arrays not an object",
+        "huge shape",
+        "fractional offset",
+        "deep header",
     ],
 )
 def test_a_damaged_header_is_a_state_error(state, how):

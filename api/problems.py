@@ -2,7 +2,8 @@
 
 Domain errors map to statuses here and nowhere else: `SpecError` and request validation 422,
 `NotFound` 404, `Unauthorized` 401, `Forbidden` 403, `ConflictError` 409, `StoreUnavailable`
-503 with Retry-After; routing errors (404, 405) and the body limit (413) keep their status.
+503 with Retry-After; routing errors (404, 405) and the body limit (413) keep their status,
+and a body the JSON parser gave up on (FastAPI's 400) is 422 like any unreadable body.
 Anything unexpected is a 500 problem without internals in the body.
 """
 
@@ -100,6 +101,12 @@ def problem_responses(*statuses: int) -> dict[int | str, dict[str, Any]]:
 async def _http_error(request: Request, exc: Exception) -> JSONResponse:
     assert isinstance(exc, StarletteHTTPException)
     detail = exc.detail if isinstance(exc.detail, str) else HTTPStatus(exc.status_code).phrase
+    if exc.status_code == 400:
+        # FastAPI's own 400 for a body its JSON parser gave up on for a reason other than
+        # syntax (nesting too deep): unreadable, like any malformed body, so 422 (API.md).
+        return problem(
+            422, "the request body is not valid JSON", [{"loc": ["body"], "msg": detail}]
+        )
     if exc.status_code == 404 and detail == "Not Found":
         detail = f"no route matches {request.url.path}"
     elif exc.status_code == 405:

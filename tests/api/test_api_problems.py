@@ -208,6 +208,17 @@ def test_malformed_json_is_422(client: AppClient) -> None:
     assert_problem(response, 422)
 
 
+def test_json_nested_too_deep_is_422_and_leases_nothing(
+    client: AppClient, calibration: Calibration
+) -> None:
+    # Python's parser gives up on 5,000 levels (RecursionError), which FastAPI answers 400.
+    body = b'{"count": ' + b"[" * 5000 + b"]" * 5000 + b"}"
+    headers = {**calibration.headers, "Content-Type": "application/json"}
+    assert_problem(client.post(f"{calibration.url}/runs", content=body, headers=headers), 422)
+    info = client.get(calibration.url, headers=calibration.headers).json()
+    assert info["runs_leased"] == 0
+
+
 @pytest.mark.parametrize(
     ("content", "content_type"),
     [

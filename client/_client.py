@@ -25,7 +25,16 @@ from honing.client.errors import (
     problem_from_response,
 )
 
-__all__ = ["DEFAULT_URL", "FINISHED", "MAX_OUTAGE", "TRANSIENT", "Client", "Lease", "RetryPolicy"]
+__all__ = [
+    "DEFAULT_URL",
+    "FINISHED",
+    "MAX_OUTAGE",
+    "TRANSIENT",
+    "Client",
+    "Lease",
+    "Outage",
+    "RetryPolicy",
+]
 
 #: Where a server started with ``honing serve`` and no options listens.
 DEFAULT_URL = "http://127.0.0.1:8750"
@@ -40,6 +49,30 @@ TRANSIENT = (ConnectionFailed, ServerError, RateLimited)
 #: Seconds of such errors in a row after which a long-lived loop gives up (a restart or a
 #: failover takes well under this).
 MAX_OUTAGE = 300.0
+
+
+@dataclass
+class Outage:
+    """How long a server has been failing a long-lived loop, and whether to go on waiting.
+
+    Only a server that answered once is waited for: one that never did is a wrong address
+    or token, and its first error is the answer.
+    """
+
+    limit: float = MAX_OUTAGE
+    clock: Callable[[], float] = time.monotonic
+    since: float | None = None
+    reached: bool = False
+
+    def answered(self) -> None:
+        """The server answered: any outage is over."""
+        self.since, self.reached = None, True
+
+    def rides_out(self) -> bool:
+        """After a `TRANSIENT` error: whether to try again rather than give up."""
+        now = self.clock()
+        self.since = now if self.since is None else self.since
+        return self.reached and now - self.since < self.limit
 
 
 @dataclass(frozen=True)
@@ -299,15 +332,13 @@ class Client:
         after that; one that never answered (a wrong address, say) fails at once.
         """
         deadline = None if timeout is None else clock() + timeout
-        info: dict[str, Any] | None = None
-        outage_since: float | None = None
+        outage = Outage(max_outage, clock)
         while True:
             try:
                 info = self.calibration(calibration_id)
-                outage_since = None
+                outage.answered()
             except TRANSIENT:
-                outage_since = clock() if outage_since is None else outage_since
-                if info is None or clock() - outage_since >= max_outage:
+                if not outage.rides_out():
                     raise
             if info.get("status") in FINISHED:
                 return info

@@ -269,15 +269,7 @@ def build_parser() -> argparse.ArgumentParser:
         "again (default: 900, or --run-timeout plus 60 if longer)",
     )
     p.add_argument("--name", help="worker name shown in the runs table (default: host:pid)")
-    p.add_argument(
-        "--max-outage",
-        type=float,
-        default=MAX_OUTAGE,
-        metavar="S",
-        help="keep asking a server that answered before and is now down or failing for this "
-        "long before giving up "
-        "(default: %(default)g)",
-    )
+    _max_outage_option(p, "")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress line")
     p.set_defaults(handler=_worker)
 
@@ -291,15 +283,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("id", metavar="ID", help="calibration id")
     p.add_argument("--wait", action="store_true", help="wait until converged, exhausted or failed")
     p.add_argument("--timeout", type=float, metavar="S", help="give up waiting after S seconds")
-    p.add_argument(
-        "--max-outage",
-        type=float,
-        default=MAX_OUTAGE,
-        metavar="S",
-        help="with --wait: keep polling a server that answered before and is now down or "
-        "failing for this long before giving "
-        "up (default: %(default)g)",
-    )
+    _max_outage_option(p, "with --wait: ")
     p.add_argument(
         "--interval", type=float, default=2.0, metavar="S", help="seconds between polls (default 2)"
     )
@@ -380,6 +364,17 @@ def _serve(args: argparse.Namespace) -> int:
 def _refitter(args: argparse.Namespace) -> int:
     _server_module().run_refitter(args.store)
     return EXIT["ok"]
+
+
+def _max_outage_option(parser: argparse.ArgumentParser, when: str) -> None:
+    parser.add_argument(
+        "--max-outage",
+        type=float,
+        default=MAX_OUTAGE,
+        metavar="S",
+        help=f"{when}keep asking a server that answered before and is now down or failing "
+        "for S seconds before giving up (default: %(default)g)",
+    )
 
 
 def _create(args: argparse.Namespace) -> int:

@@ -35,7 +35,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
-from honing.client._client import FINISHED, MAX_OUTAGE, TRANSIENT, Client
+from honing.client._client import FINISHED, MAX_OUTAGE, TRANSIENT, Client, Outage
 from honing.client.errors import (
     ClientError,
     Conflict,
@@ -198,8 +198,7 @@ class Worker:
         self._finished: queue.Queue[tuple[str, str]] = queue.Queue()
         self._procs: dict[str, subprocess.Popen[bytes]] = {}
         self._lock = threading.Lock()
-        self._outage_since: float | None = None
-        self._reached = False
+        self._outage = Outage(options.max_outage)
 
     @property
     def stops(self) -> int:
@@ -258,19 +257,14 @@ class Worker:
                 self.calibration_id, free, self.name, self.options.lease_seconds
             )
         except TRANSIENT as exc:
-            # A server that answered before is down or failing: ride it out for
-            # `max_outage` seconds. One that never answered is a wrong address or token.
-            now = time.monotonic()
-            self._outage_since = self._outage_since or now
-            if self._reached and now - self._outage_since < self.options.max_outage:
+            if self._outage.rides_out():  # down or failing for now: ask again later
                 return self.options.max_idle_wait
             self.error = exc
             return None
         except ClientError as exc:
             self.error = exc
             return None
-        self._outage_since = None
-        self._reached = True
+        self._outage.answered()
         self._update(status=lease.status)
         if self._stops and lease.runs:
             # Granted while the worker was stopping (the request was in flight or retrying):

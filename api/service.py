@@ -364,23 +364,23 @@ class CalibrationService:
             raise NotFound(f"calibration {calibration_id!r} does not exist")
         with self._lock:
             expected = self._token_hashes.get(calibration_id)
-        if expected is not None:
-            try:
-                check_token(token, expected)
-            except (Unauthorized, Forbidden):
-                if await self.store.get_meta_async(calibration_id) is None:
-                    self._forget(calibration_id)
-                    raise NotFound(f"calibration {calibration_id!r} does not exist") from None
-                raise
-            return calibration_id
-        meta = await self.store.get_meta_async(calibration_id)
-        if meta is None:
-            raise NotFound(f"calibration {calibration_id!r} does not exist")
-        with self._lock:
-            self._token_hashes[calibration_id] = meta.token_hash
-            while len(self._token_hashes) > _TOKEN_CACHE_SIZE:
-                self._token_hashes.popitem(last=False)
-        check_token(token, meta.token_hash)
+        cached = expected is not None
+        if expected is None:
+            meta = await self.store.get_meta_async(calibration_id)
+            if meta is None:
+                raise NotFound(f"calibration {calibration_id!r} does not exist")
+            expected = meta.token_hash
+            with self._lock:
+                self._token_hashes[calibration_id] = expected
+                while len(self._token_hashes) > _TOKEN_CACHE_SIZE:
+                    self._token_hashes.popitem(last=False)
+        try:
+            check_token(token, expected)
+        except (Unauthorized, Forbidden):
+            if cached and await self.store.get_meta_async(calibration_id) is None:
+                self._forget(calibration_id)
+                raise NotFound(f"calibration {calibration_id!r} does not exist") from None
+            raise
         return calibration_id
 
     def status(self, meta: CalibrationMeta) -> str:

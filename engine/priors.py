@@ -405,20 +405,21 @@ class LogUniform(Prior):
 
     @property
     def _log_width(self) -> float:
-        """``log(high / low)``: from the ratio, exact for close bounds, or as a difference of
-        logs when the ratio overflows (bounds hundreds of decades apart)."""
-        ratio = self.high / self.low
-        return math.log(ratio) if math.isfinite(ratio) else math.log(self.high) - math.log(self.low)
+        return float(self._log_over_low(np.asarray(self.high)))
+
+    def _log_over_low(self, x: np.ndarray) -> np.ndarray:
+        """``log(x / low)``: from the ratio, exact for close values, or as a difference of
+        logs where the ratio overflows (hundreds of decades apart). The width is taken the
+        same way, so that the bounds map to -1 and 1 exactly."""
+        with np.errstate(over="ignore"):
+            ratio = x / self.low
+        return np.where(
+            np.isfinite(ratio), _log_positive(ratio), _log_positive(x) - math.log(self.low)
+        )
 
     def to_reference(self, x: np.ndarray) -> np.ndarray:
         x = np.asarray(x, dtype=float)
-        with np.errstate(over="ignore"):
-            ratio = x / self.low
-        # log(x / low) as the width is taken, so that the bounds map to -1 and 1 exactly
-        log_ratio = np.where(
-            np.isfinite(ratio), _log_positive(ratio), _log_positive(x) - math.log(self.low)
-        )
-        xi = 2.0 * log_ratio / self._log_width - 1.0
+        xi = 2.0 * self._log_over_low(x) / self._log_width - 1.0
         return _clip_where(xi, self.in_support(x), -1.0, 1.0)
 
     def from_reference(self, xi: np.ndarray) -> np.ndarray:

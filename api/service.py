@@ -539,12 +539,13 @@ class CalibrationService:
             trust, result = await self._compute(
                 spec, _result_json, spec, record, flat, normalised, error
             )
-            after = await self.store.finish_run_async(
+            finished = await self.store.finish_run_async(
                 calibration_id, run_id, record.epoch, new_state, result, self.clock()
             )
-            if after is not None:
+            self._count("expired", finished.expired)
+            if finished.meta is not None:
                 self._count(new_state)
-                await self._schedule_async(spec, after)
+                await self._schedule_async(spec, finished.meta)
                 return ReportOutcome(run_id, new_state, trust)
             record = None  # it changed under us: read it again
         raise ConflictError(f"run {run_id!r} kept changing while its result was written")

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from honing.api.store.base import (
     CalibrationMeta,
+    FinishResult,
     LeaseResult,
     NewCalibration,
     RunRecord,
@@ -13,6 +14,7 @@ from honing.api.store.base import (
 
 __all__ = [
     "CalibrationMeta",
+    "FinishResult",
     "LeaseResult",
     "NewCalibration",
     "RunRecord",

@@ -113,6 +113,16 @@ class LeaseResult:
     meta: CalibrationMeta | None
 
 
+@dataclass(frozen=True)
+class FinishResult:
+    """What one report step did: how many overdue leases it expired first, and the
+    calibration's metadata right after the write (None when nothing was written: the run
+    changed since it was read, or it or its calibration is gone)."""
+
+    meta: CalibrationMeta | None
+    expired: int
+
+
 class Store(Protocol):
     """Storage of calibrations, runs, engine states and refit jobs."""
 
@@ -200,12 +210,13 @@ class Store(Protocol):
         state: str,
         result_json: str,
         now: float,
-    ) -> CalibrationMeta | None:
+    ) -> FinishResult:
         """Expire overdue leases, then record a result if the run's epoch is still ``epoch``.
 
-        Returns the calibration's metadata right after the write (so the caller can decide on
-        a refit without another read); None means nothing was written: the run changed since
-        it was read (expired or finished) or is gone, so read it again.
+        The result's metadata is the calibration's right after the write (so the caller can
+        decide on a refit without another read); None means nothing was written: the run
+        changed since it was read (expired or finished) or is gone, so read it again. Its
+        count of expired leases holds either way.
         """
 
     def import_runs(

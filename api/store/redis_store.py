@@ -22,6 +22,7 @@ from redis.commands.core import Script
 
 from honing.api.store.base import (
     CalibrationMeta,
+    FinishResult,
     LeaseResult,
     NewCalibration,
     RunRecord,
@@ -52,6 +53,7 @@ _READS = "#!lua flags=no-writes\n"
 _EXPIRE_FN = """
 local function expire_overdue(meta, leases, requeue, run_prefix, now)
   local due = redis.call('ZRANGEBYSCORE', leases, '-inf', now)
+  local expired = 0
   for _, rid in ipairs(due) do
     local rk = run_prefix .. rid
     if redis.call('HGET', rk, 'state') == 'leased' then
@@ -59,10 +61,11 @@ local function expire_overdue(meta, leases, requeue, run_prefix, now)
       redis.call('HINCRBY', rk, 'epoch', 1)
       redis.call('RPUSH', requeue, redis.call('HGET', rk, 'point'))
       redis.call('HINCRBY', meta, 'leased', -1)
+      expired = expired + 1
     end
     redis.call('ZREM', leases, rid)
   end
-  return #due
+  return expired
 end
 """
 
@@ -151,8 +154,8 @@ return out
 #       6 result JSON, 7 completion time, 8... the metadata fields to return
 # Expires overdue leases, then writes the result only if the run's epoch is still the one the
 # caller read (fencing: a run that expired or finished meanwhile has a new epoch).
-# Returns {1, snapshot} written (the metadata after the write, as _META returns it), 0 stale
-# epoch, -1 no calibration, -2 no such run.
+# Returns {1, expired, snapshot} written (snapshot: the metadata after the write, as _META
+# returns it), {0, expired} not written (stale epoch or no such run), -1 no calibration.
 _FINISH = (
     _WRITES
     + _EXPIRE_FN
@@ -160,12 +163,12 @@ _FINISH = (
     + """
 local meta = KEYS[1]
 if redis.call('EXISTS', meta) == 0 then return -1 end
-expire_overdue(meta, KEYS[3], KEYS[2], ARGV[1], ARGV[2])
+local expired = expire_overdue(meta, KEYS[3], KEYS[2], ARGV[1], ARGV[2])
 local rk = KEYS[5]
 local state = redis.call('HGET', rk, 'state')
-if not state then return -2 end
-if redis.call('HGET', rk, 'epoch') ~= ARGV[4] then return 0 end
-if state == 'done' or state == 'failed' then return 0 end
+if not state then return {0, expired} end
+if redis.call('HGET', rk, 'epoch') ~= ARGV[4] then return {0, expired} end
+if state == 'done' or state == 'failed' then return {0, expired} end
 if state == 'leased' then
   redis.call('ZREM', KEYS[3], ARGV[3])
   redis.call('HINCRBY', meta, 'leased', -1)
@@ -174,7 +177,7 @@ redis.call('HSET', rk, 'state', ARGV[5], 'result', ARGV[6], 'completed_at', ARGV
 redis.call('HINCRBY', rk, 'epoch', 1)
 redis.call('HINCRBY', meta, ARGV[5], 1)
 redis.call('RPUSH', KEYS[4], ARGV[3])
-return {1, meta_snapshot(meta, KEYS[6], KEYS[2], KEYS[7], ARGV, 8)}
+return {1, expired, meta_snapshot(meta, KEYS[6], KEYS[2], KEYS[7], ARGV, 8)}
 """
 )
 
@@ -740,13 +743,16 @@ class RedisStore:
         state: str,
         result_json: str,
         now: float,
-    ) -> CalibrationMeta | None:
+    ) -> FinishResult:
         keys, args = _finish_call(calibration_id, run_id, epoch, state, result_json, now)
         with self._guard():
             out, queued = await self._pipelined_async(
                 self._finish, keys, args, queue_of=calibration_id, durable=True
             )
-        return None if isinstance(out, int) else _meta_from(calibration_id, out[1], queued)
+        if isinstance(out, int):  # no such calibration
+            return FinishResult(None, 0)
+        meta = _meta_from(calibration_id, out[2], queued) if out[0] == 1 else None
+        return FinishResult(meta, int(out[1]))
 
     def import_runs(
         self, calibration_id: str, items: list[tuple[str, str]], now: float

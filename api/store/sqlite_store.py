@@ -21,6 +21,7 @@ from anyio import to_thread
 
 from honing.api.store.base import (
     CalibrationMeta,
+    FinishResult,
     LeaseResult,
     NewCalibration,
     RunRecord,
@@ -462,21 +463,21 @@ class SqliteStore:
         state: str,
         result_json: str,
         now: float,
-    ) -> CalibrationMeta | None:
+    ) -> FinishResult:
         """`Store.finish_run_async` in the calling thread: one write transaction."""
         with self._write() as db:
             if (
                 db.execute("SELECT 1 FROM calibrations WHERE id = ?", (calibration_id,)).fetchone()
                 is None
             ):
-                return None
-            self._expire_overdue(db, calibration_id, now)
+                return FinishResult(None, 0)
+            expired = self._expire_overdue(db, calibration_id, now)
             row = db.execute(
                 "SELECT state, epoch FROM runs WHERE calibration_id = ? AND run_id = ?",
                 (calibration_id, run_id),
             ).fetchone()
             if row is None or row[1] != epoch or row[0] in ("done", "failed"):
-                return None
+                return FinishResult(None, expired)
             (order,) = db.execute(
                 "SELECT COALESCE(MAX(finish_order), 0) + 1 FROM runs WHERE calibration_id = ?",
                 (calibration_id,),
@@ -493,7 +494,7 @@ class SqliteStore:
                 "WHERE id = ?",
                 (was_leased, calibration_id),
             )
-            return self._meta(db, calibration_id)
+            return FinishResult(self._meta(db, calibration_id), expired)
 
     async def finish_run_async(
         self,
@@ -503,7 +504,7 @@ class SqliteStore:
         state: str,
         result_json: str,
         now: float,
-    ) -> CalibrationMeta | None:
+    ) -> FinishResult:
         return await to_thread.run_sync(
             self._finish_run, calibration_id, run_id, epoch, state, result_json, now
         )

@@ -120,6 +120,26 @@ def test_an_overdue_lease_reads_as_expired(client: AppClient, clock: FakeClock) 
     assert report(client, cal, run)["state"] == "done"
 
 
+def test_leases_expired_by_a_report_are_counted_in_the_metrics(
+    client: AppClient, clock: FakeClock
+) -> None:
+    # The honing_runs counter counts every lease that becomes "expired", whichever step
+    # noticed it: here the report of another run, with no lease or read in between.
+    cal = create(client)
+    short, long = lease(client, cal, 1, lease_seconds=10)[0], lease(client, cal, 1)[0]
+    clock.now += 11
+    assert report(client, cal, long)["state"] == "done"
+    text = client.get("/metrics").text
+    assert 'honing_runs_total{state="expired"} 1.0' in text
+    (view,) = [
+        r
+        for r in client.get(f"{cal.url}/runs", headers=cal.headers).json()["runs"]
+        if r["run_id"] == short["run_id"]
+    ]
+    assert view["state"] == "expired"
+    assert 'honing_runs_total{state="expired"} 1.0' in client.get("/metrics").text
+
+
 def test_leasing_goes_on_while_a_refit_runs(
     client: AppClient, calibration: Calibration, refitter: Refitter
 ) -> None:

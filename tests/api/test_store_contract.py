@@ -10,7 +10,7 @@ import pytest
 from anyio.from_thread import BlockingPortal
 
 from honing.api.store import (
-    CalibrationMeta,
+    FinishResult,
     LeaseResult,
     NewCalibration,
     Store,
@@ -50,7 +50,7 @@ class Steps:
     def lease(self, *args: Any) -> LeaseResult:
         return self.portal.call(self.store.lease_async, *args)
 
-    def finish(self, *args: Any) -> CalibrationMeta | None:
+    def finish(self, *args: Any) -> FinishResult:
         return self.portal.call(self.store.finish_run_async, *args)
 
 
@@ -98,7 +98,7 @@ def test_lease_hands_out_in_order_with_fresh_ids(store: Store, steps: Steps) -> 
 def test_lease_respects_the_budget(store: Store, steps: Steps) -> None:
     make(store, proposals=10)
     runs = steps.lease("c1", 3, "w", 0.0, 60.0, 4).runs
-    assert steps.finish("c1", runs[0].run_id, runs[0].epoch, "done", done(1.0), 1.0)
+    assert steps.finish("c1", runs[0].run_id, runs[0].epoch, "done", done(1.0), 1.0).meta
     # done 1 + leased 2 leaves room for one more under max_runs 4.
     assert len(steps.lease("c1", 5, "w", 1.0, 60.0, 4).runs) == 1
     assert steps.lease("c1", 5, "w", 1.0, 60.0, 4).runs == []
@@ -107,10 +107,10 @@ def test_lease_respects_the_budget(store: Store, steps: Steps) -> None:
 def test_finish_run_is_fenced_by_epoch(store: Store, steps: Steps) -> None:
     make(store)
     (run,) = steps.lease("c1", 1, "w", 0.0, 60.0, 100).runs
-    assert not steps.finish("c1", run.run_id, run.epoch + 1, "done", done(1.0), 1.0)
-    assert steps.finish("c1", run.run_id, run.epoch, "done", done(1.0), 1.0)
+    assert not steps.finish("c1", run.run_id, run.epoch + 1, "done", done(1.0), 1.0).meta
+    assert steps.finish("c1", run.run_id, run.epoch, "done", done(1.0), 1.0).meta
     # Finished: the old epoch no longer matches, so a second write is refused.
-    assert not steps.finish("c1", run.run_id, run.epoch, "done", done(2.0), 1.0)
+    assert not steps.finish("c1", run.run_id, run.epoch, "done", done(2.0), 1.0).meta
     stored = store.get_run("c1", run.run_id)
     assert stored is not None and stored.state == "done"
     assert stored.result == {"outputs": {"y": [1.0]}, "error": None, "trust": 1.0}
@@ -122,12 +122,12 @@ def test_finish_run_returns_the_metadata_after_the_write(store: Store, steps: St
     make(store)
     _, second = steps.lease("c1", 2, "w", 0.0, 60.0, 100).runs
     store.enqueue_refit("c1", 0.5)
-    after = steps.finish("c1", second.run_id, second.epoch, "failed", done(1.0), 1.0)
+    after = steps.finish("c1", second.run_id, second.epoch, "failed", done(1.0), 1.0).meta
     assert after is not None
     assert (after.done, after.failed, after.leased, after.queued) == (0, 1, 1, 3)
     assert after.refit_pending and after.state_version == 1
     assert after == store.get_meta("c1")
-    assert not steps.finish("c1", "r999", 1, "done", done(1.0), 1.0)
+    assert not steps.finish("c1", "r999", 1, "done", done(1.0), 1.0).meta
 
 
 def test_expired_lease_is_requeued_first_and_late_result_kept(store: Store, steps: Steps) -> None:
@@ -140,9 +140,9 @@ def test_expired_lease_is_requeued_first_and_late_result_kept(store: Store, step
     assert again.point == old.point
     expired = store.get_run("c1", old.run_id)
     assert expired is not None and expired.state == "expired" and expired.epoch == old.epoch + 1
-    assert not steps.finish("c1", old.run_id, old.epoch, "done", done(1.0), 11.0)
-    assert steps.finish("c1", old.run_id, expired.epoch, "done", done(1.0), 11.0)
-    assert steps.finish("c1", again.run_id, again.epoch, "failed", done(1.0), 12.0)
+    assert not steps.finish("c1", old.run_id, old.epoch, "done", done(1.0), 11.0).meta
+    assert steps.finish("c1", old.run_id, expired.epoch, "done", done(1.0), 11.0).meta
+    assert steps.finish("c1", again.run_id, again.epoch, "failed", done(1.0), 12.0).meta
     meta = store.get_meta("c1")
     assert meta is not None and (meta.done, meta.failed, meta.leased) == (1, 1, 0)
     assert [r.run_id for r in store.finished_runs("c1")] == [old.run_id, again.run_id]
@@ -153,8 +153,10 @@ def test_expired_lease_is_requeued_first_and_late_result_kept(store: Store, step
 def test_expire_runs_lazily_on_report(store: Store, steps: Steps) -> None:
     make(store, proposals=3)
     a, b = steps.lease("c1", 2, "w", 0.0, 10.0, 100).runs
-    # The report step itself expires both overdue leases, so the epoch it was given is stale.
-    assert not steps.finish("c1", a.run_id, a.epoch, "done", done(1.0), 20.0)
+    # The report step itself expires both overdue leases, so the epoch it was given is stale;
+    # it says how many it expired, for the service's run counter.
+    stale = steps.finish("c1", a.run_id, a.epoch, "done", done(1.0), 20.0)
+    assert stale.meta is None and stale.expired == 2
     assert [store.get_run("c1", r.run_id).state for r in (a, b)] == ["expired", "expired"]  # type: ignore[union-attr]
     meta = store.get_meta("c1")
     assert meta is not None and (meta.queued, meta.leased) == (3, 0)
@@ -223,6 +225,19 @@ def test_an_sqlite_file_from_before_budgets_gains_the_column(tmp_path: Any) -> N
     finally:
         store.close()
     open_store(f"sqlite:///{path}").close()  # a second open finds the column there
+
+
+def test_a_written_report_counts_the_leases_it_expired(store: Store, steps: Steps) -> None:
+    make(store, proposals=3)
+    (short,) = steps.lease("c1", 1, "w", 0.0, 10.0, 100).runs
+    (long,) = steps.lease("c1", 1, "w", 0.0, 60.0, 100).runs
+    written = steps.finish("c1", long.run_id, long.epoch, "done", done(1.0), 20.0)
+    assert written.expired == 1 and written.meta is not None
+    assert (written.meta.done, written.meta.leased, written.meta.queued) == (1, 0, 2)
+    # A second report finds nothing more to expire.
+    (again,) = steps.lease("c1", 1, "w", 20.0, 60.0, 100).runs
+    assert again.point == short.point
+    assert steps.finish("c1", again.run_id, again.epoch, "done", done(1.0), 21.0).expired == 0
 
 
 def test_delete_removes_everything(store: Store, steps: Steps) -> None:

@@ -14,6 +14,7 @@ import os
 import signal
 import sys
 import tempfile
+import threading
 import time
 from collections.abc import Iterator, Sequence
 from pathlib import Path
@@ -117,17 +118,45 @@ def main(argv: Sequence[str] | None = None) -> int:
     if command is not None:
         args.command = [*args.command, *command]
     try:
-        return int(args.handler(args))
+        with _terminate_on_sigterm():
+            return int(args.handler(args))
     except ClientError as exc:
         _error(str(exc))
         return EXIT["error"]
     except KeyboardInterrupt:
         _error("interrupted")
         return EXIT["interrupted"]
+    except Terminated:
+        _error("terminated")
+        return EXIT["terminated"]
     except BrokenPipeError:
         # The reader of stdout went away (``honing runs ID | head``); silence the final flush.
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return EXIT["error"]
+
+
+class Terminated(BaseException):
+    """SIGTERM arrived: raised where the command stands, as Ctrl-C raises KeyboardInterrupt
+    (a BaseException, so that no handler of ordinary errors swallows it)."""
+
+
+@contextlib.contextmanager
+def _terminate_on_sigterm() -> Iterator[None]:
+    """While inside, SIGTERM raises `Terminated` (exit 143), as documented for every command;
+    the worker installs its own step-by-step handler over this one. Signal handlers belong to
+    the main thread, so elsewhere (the CLI called from a thread) nothing changes."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def handler(signum: int, frame: FrameType | None) -> None:
+        raise Terminated
+
+    previous = signal.signal(signal.SIGTERM, handler)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
 
 
 # -- parser ------------------------------------------------------------------------------

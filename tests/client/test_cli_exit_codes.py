@@ -409,6 +409,27 @@ def test_sigterm_is_handled_like_ctrl_c(fake_server: Any, tmp_path: Path) -> Non
     assert fake_server.bodies("PUT", f"{CAL}/runs/r1") == [{"outputs": {"y": [1.5]}}]
 
 
+def test_sigterm_stops_status_wait_with_143(fake_server: Any, tmp_path: Path) -> None:
+    # EPILOG: 143 for SIGTERM, for every command (here one waiting on the server, not a worker).
+    fake_server.on("GET", CAL, calibration("collecting"))
+    env = {k: v for k, v in os.environ.items() if not k.startswith("HONING_")}
+    env.update(HONING_URL=fake_server.url, HONING_TOKEN="t")
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "honing.client.cli", "status", "c1", "--wait", "--interval", "0.1"],
+        env=env,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    deadline = time.monotonic() + 60
+    while len(fake_server.bodies("GET", CAL)) < 2:  # it is polling
+        assert proc.poll() is None and time.monotonic() < deadline
+        time.sleep(0.05)
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 143, err
+    assert err.strip().endswith("terminated") and "Traceback" not in err
+
+
 def test_serve_without_the_server_extra_is_one_line(
     monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
 ) -> None:

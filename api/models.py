@@ -188,6 +188,18 @@ class LeaseResponse(_Output):
     status: Status
 
 
+class LeaseExtension(_Input):
+    lease_seconds: Number | None = Field(
+        default=None, ge=1, le=604800, description="from now; default: the server's lease time"
+    )
+
+
+class LeaseExtended(_Output):
+    run_id: str
+    state: Literal["leased"]
+    lease_expires_at: str
+
+
 class ReportRequest(_Input):
     """Either ``outputs`` (one list of numbers per observation) or ``error``."""
 

@@ -64,6 +64,12 @@ _TOKEN_CACHE_SIZE = 8192
 # Ids become parts of store keys: anything else cannot name a calibration or run.
 _CALIBRATION_ID = re.compile(r"[A-Za-z0-9_-]{1,64}")
 _RUN_ID = re.compile(r"r[0-9]{1,15}")
+#: Why a run's lease can no longer be extended, by its state.
+_LEASE_OVER = {
+    "expired": "its lease ran out and its point was handed out again (its result is still kept)",
+    "done": "its result is in",
+    "failed": "its failure is in",
+}
 #: A report re-reads a run that changed under it (expired or finished meanwhile) this often.
 _REPORT_ATTEMPTS = 5
 #: Tries of the budget's compare-and-swap against refits that keep moving the state on.
@@ -503,6 +509,30 @@ class CalibrationService:
         ]
         retry = None if runs or status in FINAL_STATUSES else RETRY_AFTER_SECONDS
         return LeaseOutcome(runs, status, retry)
+
+    def extend_lease(
+        self, calibration_id: str, run_id: str, lease_seconds: float
+    ) -> dict[str, Any]:
+        """Keep a leased run for ``lease_seconds`` more from now, so that a run longer than
+        its first lease is not handed out again; 409 once the lease is over (the run expired
+        and its point went out again, or its result is in: a late result is still kept)."""
+        now = self.clock()
+        known = _RUN_ID.fullmatch(run_id) is not None
+        result = self.store.extend_lease(calibration_id, run_id, now, now + lease_seconds)
+        self._count("expired", result.expired)
+        if not known or result.state is None:
+            self.meta(calibration_id)  # 404 for the calibration first, if it is gone
+            raise NotFound(f"run {run_id!r} does not exist in calibration {calibration_id!r}")
+        if result.state != "leased":
+            raise ConflictError(
+                f"run {run_id!r} is {result.state}, no longer leased: "
+                + _LEASE_OVER.get(result.state, "its lease cannot be extended")
+            )
+        return {
+            "run_id": run_id,
+            "state": "leased",
+            "lease_expires_at": rfc3339(now + lease_seconds),
+        }
 
     async def report(
         self,

@@ -250,6 +250,17 @@ class Client:
             retry_after=parse_retry_after(response.headers.get("Retry-After")),
         )
 
+    def extend_lease(
+        self, calibration_id: str, run_id: str, lease_seconds: float | None = None
+    ) -> dict[str, Any]:
+        """Keep a leased run for ``lease_seconds`` more from now (the server's lease time by
+        default); `Conflict` once its lease is over. Extending again is harmless, so it is
+        retried like any PUT."""
+        body: dict[str, Any] = {}
+        if lease_seconds is not None:
+            body["lease_seconds"] = lease_seconds
+        return self._json("PUT", _path(calibration_id, "runs", run_id, "lease"), json=body)
+
     def report(
         self,
         calibration_id: str,

@@ -75,7 +75,8 @@ For each run COMMAND gets in its environment:
 and "{name}" in its arguments is replaced by that parameter's value. COMMAND runs in the
 current folder. A non-zero exit, a missing or malformed outputs file, or a run longer than
 --run-timeout is reported as a failed run, with the end of COMMAND's stderr as the message.
-A COMMAND that cannot start at all stops the worker (exit 1) and reports nothing.
+A COMMAND that cannot start at all stops the worker (exit 1) and reports nothing. While
+COMMAND runs, its lease is extended, so a run may take longer than --lease-seconds.
 
 The worker exits when the calibration stops handing out work: 0 once converged, 3 when the
 run budget is used up. Ctrl-C stops leasing and waits for the runs in hand to finish and be
@@ -294,8 +295,9 @@ def build_parser() -> argparse.ArgumentParser:
         "--lease-seconds",
         type=float,
         metavar="S",
-        help="how long the server keeps a point for this worker before handing it out "
-        "again (default: 900, or --run-timeout plus 60 if longer)",
+        help="lease length: the worker extends each run's lease while its command runs, so "
+        "this is how soon the points of a worker that died are handed out again "
+        "(default: 900, or --run-timeout plus 60 if longer)",
     )
     p.add_argument("--name", help="worker name shown in the runs table (default: host:pid)")
     _max_outage_option(p, "")

@@ -5,6 +5,9 @@ The command sees, in its environment, ``HONING_PARAMS`` (path of a JSON file
 ``HONING_OUTPUTS`` (where it writes ``{observation name: [numbers]}``); ``{name}`` in its
 arguments is replaced by that parameter's value. A non-zero exit, a missing or malformed
 outputs file, or a timeout is reported as a failed run with the tail of the command's stderr.
+While a command runs, the worker extends its run's lease each time half of it has passed, so
+a run longer than its lease is not handed out to another worker; the lease length is then
+only how soon the point of a worker that died goes out again.
 
 Stopping is gradual: the first `Worker.stop` stops leasing and lets the commands in hand
 finish and be reported; the second terminates them and reports them as failed; the third
@@ -30,7 +33,7 @@ import subprocess
 import tempfile
 import threading
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -54,6 +57,11 @@ ERROR_CHARS = 4000
 KILL_GRACE = 5.0
 #: Seconds between progress refreshes from the server (round, validation error).
 PROGRESS_POLL = 2.0
+#: Share of a lease after which the worker extends it, and again each time (a run longer
+#: than its lease is not handed out to another worker meanwhile).
+EXTEND_AFTER = 0.5
+#: Longest wait before an extension that failed for want of the server is tried again.
+EXTEND_RETRY = 30.0
 
 _PLACEHOLDER = re.compile(r"\{([A-Za-z0-9_.\-]+)\}")
 
@@ -199,6 +207,7 @@ class Worker:
         self._procs: dict[str, subprocess.Popen[bytes]] = {}
         self._lock = threading.Lock()
         self._outage = Outage(options.max_outage)
+        self._extend_due: dict[str, float] = {}  # run id -> when to extend its lease
 
     @property
     def stops(self) -> int:
@@ -220,28 +229,29 @@ class Worker:
         next_poll = 0.0
         finished = False
         killed = abandoned = False
-        while True:
-            self._collect(active)
-            if self._stops >= 2 and not killed:
-                killed = True
-                self._terminate_all()
-            if self._stops >= 3 and not abandoned:
-                abandoned = True
-                self.client.cancel()
-            if abandoned or ((finished or self._stops or self.error) and not active):
-                break
-            now = time.monotonic()
-            can_lease = not (finished or self._stops or self.error)
-            if can_lease and len(active) < self.options.jobs and now >= next_lease:
-                lease_wait = self._lease(active)
-                if lease_wait is None:
-                    finished = self.progress.status in FINISHED
-                    continue
-                next_lease = time.monotonic() + lease_wait
-            if self.on_progress is not None and now >= next_poll and not self._stops:
-                next_poll = now + PROGRESS_POLL
-                self._poll()
-            self._collect(active, wait=max(0.05, min(next_lease - time.monotonic(), 0.5)))
+        with self._extending():
+            while True:
+                self._collect(active)
+                if self._stops >= 2 and not killed:
+                    killed = True
+                    self._terminate_all()
+                if self._stops >= 3 and not abandoned:
+                    abandoned = True
+                    self.client.cancel()
+                if abandoned or ((finished or self._stops or self.error) and not active):
+                    break
+                now = time.monotonic()
+                can_lease = not (finished or self._stops or self.error)
+                if can_lease and len(active) < self.options.jobs and now >= next_lease:
+                    lease_wait = self._lease(active)
+                    if lease_wait is None:
+                        finished = self.progress.status in FINISHED
+                        continue
+                    next_lease = time.monotonic() + lease_wait
+                if self.on_progress is not None and now >= next_poll and not self._stops:
+                    next_poll = now + PROGRESS_POLL
+                    self._poll()
+                self._collect(active, wait=max(0.05, min(next_lease - time.monotonic(), 0.5)))
         self._update(running=len(active), stopping=bool(self._stops))
         if not self._stops and not self.error:
             self._poll()
@@ -270,9 +280,12 @@ class Worker:
             # Granted while the worker was stopping (the request was in flight or retrying):
             # not started, their leases expire and the points are handed out again.
             return None
+        extend_at = time.monotonic() + EXTEND_AFTER * self.options.lease_seconds
         for run in lease.runs:
             thread = threading.Thread(target=self._execute, args=(run,), daemon=True)
             active[str(run["run_id"])] = thread
+            with self._lock:
+                self._extend_due[str(run["run_id"])] = extend_at
             thread.start()
         self._update(running=len(active))
         if lease.runs:
@@ -299,6 +312,8 @@ class Worker:
             if self.error is None:
                 self.error = exc
         finally:
+            with self._lock:
+                self._extend_due.pop(run_id, None)
             self._finished.put((run_id, outcome))
 
     def _run(self, run_id: str, run: Mapping[str, Any]) -> RunResult:
@@ -334,6 +349,50 @@ class Worker:
         except Conflict:
             return "conflict"
         return "failed"
+
+    @contextlib.contextmanager
+    def _extending(self) -> Iterator[None]:
+        """While inside, a thread extends the leases of the runs in hand (`_extend_leases`)."""
+        done = threading.Event()
+        thread = threading.Thread(target=self._extend_leases, args=(done,), daemon=True)
+        thread.start()
+        try:
+            yield
+        finally:
+            done.set()
+            thread.join()
+
+    def _extend_leases(self, done: threading.Event) -> None:
+        """Until ``done``, extend each run's lease once `EXTEND_AFTER` of it has passed."""
+        while not done.is_set():
+            now = time.monotonic()
+            with self._lock:
+                due = [rid for rid, when in self._extend_due.items() if when <= now]
+                soonest = min(self._extend_due.values(), default=now + 1.0)
+            for run_id in due:
+                self._extend_one(run_id)
+            if not due:
+                done.wait(min(max(soonest - now, 0.01), 1.0))
+
+    def _extend_one(self, run_id: str) -> None:
+        """Extend one run's lease and schedule the next extension. A lease that is already
+        over (409) or a server without extensions is left alone: the run goes on, and its
+        result is kept however late; a server that is down is asked again soon."""
+        seconds = self.options.lease_seconds
+        later: float | None = EXTEND_AFTER * seconds
+        try:
+            self.client.extend_lease(self.calibration_id, run_id, seconds)
+        except TRANSIENT:
+            later = min(EXTEND_RETRY, 0.1 * seconds)
+        except ClientError:
+            later = None
+        with self._lock:
+            if run_id not in self._extend_due:
+                return  # it finished meanwhile
+            if later is None:
+                del self._extend_due[run_id]
+            else:
+                self._extend_due[run_id] = time.monotonic() + later
 
     def _register(self, run_id: str, proc: subprocess.Popen[bytes]) -> None:
         with self._lock:

@@ -1,4 +1,4 @@
-"""Runs: lease points, report results, import archives, list."""
+"""Runs: lease points, extend leases, report results, import archives, list."""
 
 from __future__ import annotations
 
@@ -13,6 +13,8 @@ from honing.api.deps import AuthorizedCalibration, ServiceDep
 from honing.api.models import (
     ImportRequest,
     ImportResponse,
+    LeaseExtended,
+    LeaseExtension,
     LeaseRequest,
     LeaseResponse,
     ReportRequest,
@@ -59,6 +61,24 @@ async def report_run(
     outcome = await service.report(calibration_id, run_id, body.outputs, body.error)
     answer = ReportResponse(run_id=outcome.run_id, state=outcome.state, trust=outcome.trust)  # type: ignore[arg-type]
     return json_response(answer)
+
+
+@router.put(
+    "/{run_id}/lease",
+    response_model=LeaseExtended,
+    responses=problem_responses(401, 403, 404, 409, 413, 422, 503),
+)
+def extend_lease(
+    run_id: str,
+    body: LeaseExtension,
+    calibration_id: AuthorizedCalibration,
+    service: ServiceDep,
+    request: Request,
+) -> LeaseExtended:
+    """Keep a leased run for ``lease_seconds`` more from now (a run longer than its lease);
+    409 once its lease is over."""
+    seconds = body.lease_seconds or request.app.state.settings.lease_seconds
+    return LeaseExtended(**service.extend_lease(calibration_id, run_id, seconds))
 
 
 @router.post(

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from honing.api.store.base import (
     CalibrationMeta,
+    ExtendResult,
     FinishResult,
     LeaseResult,
     NewCalibration,
@@ -14,6 +15,7 @@ from honing.api.store.base import (
 
 __all__ = [
     "CalibrationMeta",
+    "ExtendResult",
     "FinishResult",
     "LeaseResult",
     "NewCalibration",

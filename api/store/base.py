@@ -123,6 +123,16 @@ class FinishResult:
     expired: int
 
 
+@dataclass(frozen=True)
+class ExtendResult:
+    """What one lease extension did: how many overdue leases it expired first, and the run's
+    state afterwards (None when the run or its calibration does not exist). The lease was
+    extended exactly when the state is "leased"."""
+
+    state: str | None
+    expired: int
+
+
 class Store(Protocol):
     """Storage of calibrations, runs, engine states and refit jobs."""
 
@@ -198,6 +208,12 @@ class Store(Protocol):
 
     def expire(self, calibration_id: str, now: float) -> int:
         """Expire overdue leases; returns how many."""
+
+    def extend_lease(
+        self, calibration_id: str, run_id: str, now: float, expires_at: float
+    ) -> ExtendResult:
+        """Expire overdue leases, then move the run's lease expiry to ``expires_at`` if it is
+        still leased (the run's epoch stays: its result is expected as before)."""
 
     def get_run(self, calibration_id: str, run_id: str) -> RunRecord | None:
         """One run, or None."""

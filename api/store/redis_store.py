@@ -22,6 +22,7 @@ from redis.commands.core import Script
 
 from honing.api.store.base import (
     CalibrationMeta,
+    ExtendResult,
     FinishResult,
     LeaseResult,
     NewCalibration,
@@ -178,6 +179,27 @@ redis.call('HINCRBY', rk, 'epoch', 1)
 redis.call('HINCRBY', meta, ARGV[5], 1)
 redis.call('RPUSH', KEYS[4], ARGV[3])
 return {1, expired, meta_snapshot(meta, KEYS[6], KEYS[2], KEYS[7], ARGV, 8)}
+"""
+)
+
+# KEYS: 1 meta, 2 requeue, 3 leases, 4 run
+# ARGV: 1 run key prefix, 2 now, 3 run id, 4 new expiry time
+# Expires overdue leases, then moves the run's expiry (in its hash and in the leases set) to
+# ARGV[4] if it is still leased; its epoch stays. Returns {expired, state} (state nil when
+# there is no such run), or -1 when the calibration does not exist.
+_EXTEND_LEASE = (
+    _WRITES
+    + _EXPIRE_FN
+    + """
+local meta = KEYS[1]
+if redis.call('EXISTS', meta) == 0 then return -1 end
+local expired = expire_overdue(meta, KEYS[3], KEYS[2], ARGV[1], ARGV[2])
+local state = redis.call('HGET', KEYS[4], 'state')
+if state == 'leased' then
+  redis.call('HSET', KEYS[4], 'lease_expires_at', ARGV[4])
+  redis.call('ZADD', KEYS[3], ARGV[4], ARGV[3])
+end
+return {expired, state}
 """
 )
 
@@ -447,6 +469,7 @@ class RedisStore:
         self._expire = self._r.register_script(_EXPIRE)
         self._lease = self._r.register_script(_LEASE)
         self._finish = self._r.register_script(_FINISH)
+        self._extend_lease = self._r.register_script(_EXTEND_LEASE)
         self._import = self._r.register_script(_IMPORT)
         self._budget = self._r.register_script(_BUDGET)
         self._swap = self._r.register_script(_SWAP)
@@ -722,6 +745,19 @@ class RedisStore:
         with self._guard():
             n = self._expire(keys=[k.meta, k.requeue, k.leases], args=[k.run_prefix, _time(now)])
         return max(int(n), 0)
+
+    def extend_lease(
+        self, calibration_id: str, run_id: str, now: float, expires_at: float
+    ) -> ExtendResult:
+        k = CalibrationKeys(calibration_id)
+        keys = [k.meta, k.requeue, k.leases, k.run(run_id)]
+        args = [k.run_prefix, _time(now), run_id, _time(expires_at)]
+        with self._guard():
+            out, _ = self._pipelined(self._extend_lease, keys, args, durable=True)
+        if isinstance(out, int):  # no such calibration
+            return ExtendResult(None, 0)
+        state = out[1] if len(out) > 1 else None
+        return ExtendResult(None if state is None else str(_s(state)), int(out[0]))
 
     def get_run(self, calibration_id: str, run_id: str) -> RunRecord | None:
         k = CalibrationKeys(calibration_id)

@@ -21,6 +21,7 @@ from anyio import to_thread
 
 from honing.api.store.base import (
     CalibrationMeta,
+    ExtendResult,
     FinishResult,
     LeaseResult,
     NewCalibration,
@@ -446,6 +447,27 @@ class SqliteStore:
     def expire(self, calibration_id: str, now: float) -> int:
         with self._write() as db:
             return self._expire_overdue(db, calibration_id, now)
+
+    def extend_lease(
+        self, calibration_id: str, run_id: str, now: float, expires_at: float
+    ) -> ExtendResult:
+        with self._write() as db:
+            if (
+                db.execute("SELECT 1 FROM calibrations WHERE id = ?", (calibration_id,)).fetchone()
+                is None
+            ):
+                return ExtendResult(None, 0)
+            expired = self._expire_overdue(db, calibration_id, now)
+            db.execute(
+                "UPDATE runs SET lease_expires_at = ? "
+                "WHERE calibration_id = ? AND run_id = ? AND state = 'leased'",
+                (expires_at, calibration_id, run_id),
+            )
+            row = db.execute(
+                "SELECT state FROM runs WHERE calibration_id = ? AND run_id = ?",
+                (calibration_id, run_id),
+            ).fetchone()
+        return ExtendResult(None if row is None else str(row[0]), expired)
 
     def get_run(self, calibration_id: str, run_id: str) -> RunRecord | None:
         with self._read() as db:

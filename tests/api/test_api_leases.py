@@ -275,3 +275,85 @@ def test_points_carry_json_only(client: AppClient, calibration: Calibration) -> 
     assert_problem(
         client.get(f"{calibration.url}/runs/{run['run_id']}", headers=calibration.headers), 405
     )
+
+
+# -- extending a lease (an extension of the HTTP contract) ---------------------------------
+
+
+def _extend(client: AppClient, cal: Calibration, run_id: str, **body: object):  # type: ignore[no-untyped-def]
+    return client.put(f"{cal.url}/runs/{run_id}/lease", json=body, headers=cal.headers)
+
+
+def _states(client: AppClient, cal: Calibration) -> dict[str, str]:
+    runs = client.get(f"{cal.url}/runs", headers=cal.headers).json()["runs"]
+    return {r["run_id"]: r["state"] for r in runs}
+
+
+def test_an_extended_lease_keeps_a_long_run(client: AppClient, clock: FakeClock) -> None:
+    cal = create(client)
+    (run,) = lease(client, cal, 1, lease_seconds=60)
+    for _ in range(3):  # 150 s in all: well past the first 60 s lease
+        clock.now += 50
+        answer = _extend(client, cal, run["run_id"], lease_seconds=60)
+        assert answer.status_code == 200, answer.text
+        body = answer.json()
+        assert body["run_id"] == run["run_id"] and body["state"] == "leased"
+        expires = datetime.fromisoformat(body["lease_expires_at"]).timestamp()
+        assert abs(expires - (clock.now + 60)) < 0.01
+    # Not handed out again: the next lease gets a fresh point.
+    (other,) = lease(client, cal, 1)
+    assert other["parameters"] != run["parameters"]
+    assert _states(client, cal)[run["run_id"]] == "leased"
+    assert report(client, cal, run)["state"] == "done"
+
+
+def test_extending_without_seconds_uses_the_server_lease_time(
+    client: AppClient, clock: FakeClock
+) -> None:
+    cal = create(client)
+    (run,) = lease(client, cal, 1, lease_seconds=10)
+    body = _extend(client, cal, run["run_id"]).json()
+    expires = datetime.fromisoformat(body["lease_expires_at"]).timestamp()
+    assert abs(expires - (clock.now + client.app.state.settings.lease_seconds)) < 0.01
+
+
+def test_an_overdue_lease_cannot_be_extended(client: AppClient, clock: FakeClock) -> None:
+    # The lease ran out before the extension arrived: the run is expired (counted once) and its
+    # point goes out again; the answer says so, and a late result is still kept.
+    cal = create(client)
+    (run,) = lease(client, cal, 1, lease_seconds=10)
+    clock.now += 11
+    problem = assert_problem(_extend(client, cal, run["run_id"], lease_seconds=60), 409)
+    assert "expired" in problem["detail"] and "handed out again" in problem["detail"]
+    assert _states(client, cal)[run["run_id"]] == "expired"
+    assert 'honing_runs_total{state="expired"} 1.0' in client.get("/metrics").text
+    (again,) = lease(client, cal, 1)
+    assert again["parameters"] == run["parameters"]
+    assert report(client, cal, run)["state"] == "done"
+
+
+def test_a_finished_run_cannot_be_extended(client: AppClient) -> None:
+    cal = create(client)
+    (run,) = lease(client, cal, 1)
+    report(client, cal, run)
+    problem = assert_problem(_extend(client, cal, run["run_id"], lease_seconds=60), 409)
+    assert "result is in" in problem["detail"]
+
+
+@pytest.mark.parametrize("run_id", ["r999", "nope"])
+def test_extending_an_unknown_run_is_404(client: AppClient, run_id: str) -> None:
+    cal = create(client)
+    lease(client, cal, 1)
+    assert_problem(_extend(client, cal, run_id, lease_seconds=60), 404)
+
+
+@pytest.mark.parametrize("seconds", [0, 604801, "60", True])
+def test_a_bad_extension_is_422_and_changes_nothing(
+    client: AppClient, clock: FakeClock, seconds: object
+) -> None:
+    cal = create(client)
+    (run,) = lease(client, cal, 1, lease_seconds=10)
+    problem = assert_problem(_extend(client, cal, run["run_id"], lease_seconds=seconds), 422)
+    assert "lease_seconds" in json.dumps(problem)
+    clock.now += 11  # the lease was not extended: it is overdue now
+    assert _states(client, cal)[run["run_id"]] == "expired"

@@ -20,6 +20,8 @@ CONTRACT = {
     ("patch", "/v1/calibrations/{calibration_id}"): "200",
     ("post", "/v1/calibrations/{calibration_id}/runs"): "200",
     ("put", "/v1/calibrations/{calibration_id}/runs/{run_id}"): "200",
+    # An extension of the contract: keeping a long run's lease.
+    ("put", "/v1/calibrations/{calibration_id}/runs/{run_id}/lease"): "200",
     ("post", "/v1/calibrations/{calibration_id}/runs/import"): "200",
     ("get", "/v1/calibrations/{calibration_id}/runs"): "200",
     ("get", "/v1/calibrations/{calibration_id}/posterior"): "200",

@@ -10,6 +10,7 @@ import pytest
 from anyio.from_thread import BlockingPortal
 
 from honing.api.store import (
+    ExtendResult,
     FinishResult,
     LeaseResult,
     NewCalibration,
@@ -238,6 +239,36 @@ def test_a_written_report_counts_the_leases_it_expired(store: Store, steps: Step
     (again,) = steps.lease("c1", 1, "w", 20.0, 60.0, 100).runs
     assert again.point == short.point
     assert steps.finish("c1", again.run_id, again.epoch, "done", done(1.0), 21.0).expired == 0
+
+
+def test_extend_lease_moves_the_expiry_and_keeps_the_epoch(store: Store, steps: Steps) -> None:
+    make(store, proposals=3)
+    (run,) = steps.lease("c1", 1, "w", 0.0, 10.0, 100).runs
+    extended = store.extend_lease("c1", run.run_id, 5.0, 25.0)
+    assert (extended.state, extended.expired) == ("leased", 0)
+    stored = store.get_run("c1", run.run_id)
+    assert stored is not None and stored.lease_expires_at == 25.0 and stored.epoch == run.epoch
+    # Past the first expiry, before the new one: still leased, nothing re-queued.
+    lease = steps.lease("c1", 1, "w", 20.0, 10.0, 100)
+    assert lease.expired == 0 and lease.runs[0].point != run.point
+    assert steps.finish("c1", run.run_id, run.epoch, "done", done(1.0), 24.0).meta is not None
+
+
+def test_extend_lease_refuses_what_is_no_longer_leased(store: Store, steps: Steps) -> None:
+    make(store, proposals=3)
+    short, kept = steps.lease("c1", 2, "w", 0.0, 10.0, 100).runs
+    assert store.extend_lease("c1", kept.run_id, 5.0, 60.0).state == "leased"
+    # The extension step expires the overdue lease first, then finds it no longer leased.
+    late = store.extend_lease("c1", short.run_id, 11.0, 70.0)
+    assert (late.state, late.expired) == ("expired", 1)
+    stored = store.get_run("c1", short.run_id)
+    assert stored is not None and stored.lease_expires_at == 10.0
+    steps.finish("c1", kept.run_id, kept.epoch, "done", done(1.0), 12.0)
+    assert store.extend_lease("c1", kept.run_id, 13.0, 80.0).state == "done"
+    assert store.extend_lease("c1", "r999", 13.0, 80.0) == ExtendResult(None, 0)
+    assert store.extend_lease("nope", "r1", 13.0, 80.0) == ExtendResult(None, 0)
+    meta = store.get_meta("c1")
+    assert meta is not None and (meta.done, meta.leased, meta.queued) == (1, 0, 2)
 
 
 def test_delete_removes_everything(store: Store, steps: Steps) -> None:

@@ -198,3 +198,24 @@ def test_a_spent_budget_is_raised_and_the_worker_goes_on(
     refused = cli("budget", cid, str(least - 1), url=live_server, token=token)
     reason = "max_runs" if again.returncode == 3 else "has converged"
     assert refused.returncode == 1 and reason in refused.stderr, refused.stderr
+
+
+def test_runs_longer_than_their_lease_are_not_handed_out_twice(
+    live_server: str, cli: Any, create: Any, tmp_path: Path
+) -> None:
+    # Each run takes 5 s against a 3 s lease: the worker extends the leases while the
+    # commands run, so no lease lapses and no point is evaluated twice.
+    cid, token = create("long-runs", max_runs=6)
+    slow = tmp_path / "slow.py"
+    slow.write_text("import time\ntime.sleep(5)\n" + SIMULATOR)
+    command = [sys.executable, str(slow), "{a}", "{b}"]
+    result = cli(
+        "worker", cid, "-j", "3", "-q", "--lease-seconds", "3", "--", *command,
+        url=live_server, token=token,
+    )  # fmt: skip
+    assert result.returncode == 3, result.stderr
+    runs = json.loads(cli("runs", cid, "--json", url=live_server, token=token).stdout)["runs"]
+    assert [r["state"] for r in runs] == ["done"] * 6
+    # (A lapsed lease's late result is kept as "done" too, but its point would have gone out
+    # again in place of a new one.)
+    assert len({(r["parameters"]["a"], r["parameters"]["b"]) for r in runs}) == 6

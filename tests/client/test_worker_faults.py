@@ -284,3 +284,55 @@ def test_status_falls_back_to_the_warning_of_a_posterior_stored_earlier(
     result = cli("status", "c1", url=fake_server.url, token="t")
     assert result.returncode == 3
     assert result.stderr == f"warning: {reason}\n"
+
+
+# -- lease extension --------------------------------------------------------------------
+
+#: A command that outlives a one-second lease.
+SLOW = [
+    sys.executable,
+    "-c",
+    "import json, os, time; time.sleep(1.8); "
+    "json.dump({'y': [1.0]}, open(os.environ['HONING_OUTPUTS'], 'w'))",
+]
+
+
+def reports(fake_server: Any) -> list[Any]:
+    """The bodies of r1's result reports (not of its lease extensions)."""
+    return [b for b in fake_server.bodies("PUT", f"{CAL}/runs/r1") if "lease_seconds" not in b]
+
+
+def test_a_run_longer_than_its_lease_has_it_extended(fake_server: Any, cli: Any) -> None:
+    one_run_then(fake_server)
+    fake_server.on(
+        "PUT",
+        f"{CAL}/runs/r1/lease",
+        {"run_id": "r1", "state": "leased", "lease_expires_at": "2026-01-01T00:00:01Z"},
+    )
+    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "done", "trust": 1.0})
+    result = cli(
+        "worker", "c1", "-q", "--lease-seconds", "1", "--", *SLOW, url=fake_server.url, token="t"
+    )
+    assert result.returncode == 3, result.stderr
+    # Extended each time half of the lease has passed: at about 0.5, 1.0 and 1.5 s of 1.8 s.
+    extensions = fake_server.bodies("PUT", f"{CAL}/runs/r1/lease")
+    assert len(extensions) >= 2 and all(b == {"lease_seconds": 1.0} for b in extensions)
+    assert reports(fake_server) == [{"outputs": {"y": [1.0]}}]
+
+
+@pytest.mark.parametrize("status", [409, 404])
+def test_a_lease_that_cannot_be_extended_is_left_and_the_run_goes_on(
+    fake_server: Any, cli: Any, status: int
+) -> None:
+    # 409: the lease ran out before the extension arrived; 404: a server without extensions.
+    # Either way the run finishes and its result is reported (a late result is kept).
+    one_run_then(fake_server)
+    problem = {"title": "Conflict", "status": status, "detail": "run 'r1' is expired"}
+    fake_server.on("PUT", f"{CAL}/runs/r1/lease", problem, status=status)
+    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "done", "trust": 1.0})
+    result = cli(
+        "worker", "c1", "-q", "--lease-seconds", "1", "--", *SLOW, url=fake_server.url, token="t"
+    )
+    assert result.returncode == 3, result.stderr
+    assert len(fake_server.bodies("PUT", f"{CAL}/runs/r1/lease")) == 1
+    assert reports(fake_server) == [{"outputs": {"y": [1.0]}}]

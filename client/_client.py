@@ -251,15 +251,22 @@ class Client:
         )
 
     def extend_lease(
-        self, calibration_id: str, run_id: str, lease_seconds: float | None = None
+        self,
+        calibration_id: str,
+        run_id: str,
+        lease_seconds: float | None = None,
+        *,
+        retry: bool = True,
     ) -> dict[str, Any]:
         """Keep a leased run for ``lease_seconds`` more from now (the server's lease time by
         default); `Conflict` once its lease is over. Extending again is harmless, so it is
-        retried like any PUT."""
+        retried like any PUT; ``retry=False`` tries once, for a caller that keeps its own
+        schedule (the worker)."""
         body: dict[str, Any] = {}
         if lease_seconds is not None:
             body["lease_seconds"] = lease_seconds
-        return self._json("PUT", _path(calibration_id, "runs", run_id, "lease"), json=body)
+        path = _path(calibration_id, "runs", run_id, "lease")
+        return self._json("PUT", path, json=body, attempts=None if retry else 1)
 
     def report(
         self,
@@ -376,6 +383,7 @@ class Client:
         auth: str | None = "token",
         persistent: bool = False,
         retry_unsafe: bool = False,
+        attempts: int | None = None,
     ) -> httpx.Response:
         request_headers = dict(headers or {})
         secret = self.admin_key if auth == "admin" else self.token if auth == "token" else None
@@ -384,7 +392,7 @@ class Client:
         repeatable = method in _IDEMPOTENT or retry_unsafe
         attempt = 0
         while True:
-            last_try = not persistent and attempt + 1 >= self.retry.attempts
+            last_try = not persistent and attempt + 1 >= (attempts or self.retry.attempts)
             try:
                 response = self._http.request(
                     method, path, json=json, params=params, headers=request_headers

@@ -62,6 +62,9 @@ PROGRESS_POLL = 2.0
 EXTEND_AFTER = 0.5
 #: Longest wait before an extension that failed for want of the server is tried again.
 EXTEND_RETRY = 30.0
+#: Seconds a worker that is done waits for an extension still in flight; the thread is a
+#: daemon, so one held up by a server that does not answer is left behind.
+EXTEND_JOIN = 1.0
 
 _PLACEHOLDER = re.compile(r"\{([A-Za-z0-9_.\-]+)\}")
 
@@ -360,7 +363,7 @@ class Worker:
             yield
         finally:
             done.set()
-            thread.join()
+            thread.join(EXTEND_JOIN)
 
     def _extend_leases(self, done: threading.Event) -> None:
         """Until ``done``, extend each run's lease once `EXTEND_AFTER` of it has passed."""
@@ -370,21 +373,24 @@ class Worker:
                 due = [rid for rid, when in self._extend_due.items() if when <= now]
                 soonest = min(self._extend_due.values(), default=now + 1.0)
             for run_id in due:
+                if done.is_set():
+                    return
                 self._extend_one(run_id)
             if not due:
                 done.wait(min(max(soonest - now, 0.01), 1.0))
 
     def _extend_one(self, run_id: str) -> None:
-        """Extend one run's lease and schedule the next extension. A lease that is already
-        over (409) or a server without extensions is left alone: the run goes on, and its
-        result is kept however late; a server that is down is asked again soon."""
+        """Extend one run's lease (one try) and schedule the next extension. A server that
+        is down or busy is asked again soon. Anything else leaves the lease alone (409: it is
+        already over; 404: a server without extensions): extending is a courtesy, the run
+        goes on, and its result is kept however late."""
         seconds = self.options.lease_seconds
         later: float | None = EXTEND_AFTER * seconds
         try:
-            self.client.extend_lease(self.calibration_id, run_id, seconds)
+            self.client.extend_lease(self.calibration_id, run_id, seconds, retry=False)
         except TRANSIENT:
             later = min(EXTEND_RETRY, 0.1 * seconds)
-        except ClientError:
+        except Exception:  # nothing here may end the thread: the other runs' leases need it
             later = None
         with self._lock:
             if run_id not in self._extend_due:

@@ -5,7 +5,10 @@ files. Each runs the real command line as a subprocess against a fake server."""
 from __future__ import annotations
 
 import json
+import os
+import subprocess
 import sys
+import threading
 from pathlib import Path
 from typing import Any
 
@@ -335,4 +338,57 @@ def test_a_lease_that_cannot_be_extended_is_left_and_the_run_goes_on(
     )
     assert result.returncode == 3, result.stderr
     assert len(fake_server.bodies("PUT", f"{CAL}/runs/r1/lease")) == 1
+    assert reports(fake_server) == [{"outputs": {"y": [1.0]}}]
+
+
+def test_an_extension_the_server_cannot_take_now_is_tried_again_soon(
+    fake_server: Any, cli: Any
+) -> None:
+    # 503 with a five-minute Retry-After: the worker does not sit out the hint inside one
+    # call (its lease would lapse meanwhile); it tries again a tenth of a lease later.
+    one_run_then(fake_server)
+    fake_server.on(
+        "PUT", f"{CAL}/runs/r1/lease", SERVICE_UNAVAILABLE, status=503, Retry_After="300"
+    )
+    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "done", "trust": 1.0})
+    result = cli(
+        "worker", "c1", "-q", "--lease-seconds", "1", "--", *SLOW, url=fake_server.url, token="t"
+    )
+    assert result.returncode == 3, result.stderr
+    # From 0.5 s to 1.8 s, every 0.1 s: about 13 tries; 3 is far below, 1 is a stalled call.
+    assert len(fake_server.bodies("PUT", f"{CAL}/runs/r1/lease")) >= 3
+    assert reports(fake_server) == [{"outputs": {"y": [1.0]}}]
+
+
+def test_the_worker_ends_without_waiting_for_a_hung_extension(
+    fake_server: Any, tmp_path: Path
+) -> None:
+    # The server never answers the extension (until the test lets it): the run finishes, is
+    # reported, and the worker exits; the stuck call is left behind.
+    one_run_then(fake_server)
+    release = threading.Event()
+
+    def hang(body: Any) -> tuple[int, Any, dict[str, str]]:
+        release.wait(120)
+        return 200, {"run_id": "r1", "state": "leased", "lease_expires_at": "x"}, {}
+
+    fake_server.on_call("PUT", f"{CAL}/runs/r1/lease", hang)
+    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "done", "trust": 1.0})
+    env = {k: v for k, v in os.environ.items() if not k.startswith("HONING_")}
+    env.update(HONING_URL=fake_server.url, HONING_TOKEN="t")
+    argv = ["worker", "c1", "-q", "--lease-seconds", "1", "--", *SLOW]
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "honing.client.cli", *argv],
+        env=env,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    try:
+        _, err = proc.communicate(timeout=60)  # the hung call would hold it for 120 s
+    finally:
+        release.set()
+        if proc.poll() is None:
+            proc.kill()
+            proc.communicate()
+    assert proc.returncode == 3, err
     assert reports(fake_server) == [{"outputs": {"y": [1.0]}}]

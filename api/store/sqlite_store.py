@@ -102,6 +102,12 @@ def path_from_url(url: str) -> Path:
     return Path(url[len("sqlite:///") :])
 
 
+def _exists(db: sqlite3.Connection, calibration_id: str) -> bool:
+    """Whether the calibration exists (inside the caller's transaction)."""
+    row = db.execute("SELECT 1 FROM calibrations WHERE id = ?", (calibration_id,)).fetchone()
+    return row is not None
+
+
 def _record(row: sqlite3.Row) -> RunRecord:
     fields = {k: "" if row[k] is None else str(row[k]) for k in row.keys()}
     fields["imported"] = "1" if row["imported"] else "0"
@@ -452,10 +458,7 @@ class SqliteStore:
         self, calibration_id: str, run_id: str, now: float, expires_at: float
     ) -> ExtendResult:
         with self._write() as db:
-            if (
-                db.execute("SELECT 1 FROM calibrations WHERE id = ?", (calibration_id,)).fetchone()
-                is None
-            ):
+            if not _exists(db, calibration_id):
                 return ExtendResult(None, 0)
             expired = self._expire_overdue(db, calibration_id, now)
             db.execute(
@@ -488,10 +491,7 @@ class SqliteStore:
     ) -> FinishResult:
         """`Store.finish_run_async` in the calling thread: one write transaction."""
         with self._write() as db:
-            if (
-                db.execute("SELECT 1 FROM calibrations WHERE id = ?", (calibration_id,)).fetchone()
-                is None
-            ):
+            if not _exists(db, calibration_id):
                 return FinishResult(None, 0)
             expired = self._expire_overdue(db, calibration_id, now)
             row = db.execute(

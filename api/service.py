@@ -64,9 +64,13 @@ _TOKEN_CACHE_SIZE = 8192
 # Ids become parts of store keys: anything else cannot name a calibration or run.
 _CALIBRATION_ID = re.compile(r"[A-Za-z0-9_-]{1,64}")
 _RUN_ID = re.compile(r"r[0-9]{1,15}")
+#: Longest a run's lease can be extended to, in seconds after the run was leased: the longest
+#: single lease a request may ask for (7 days).
+LONGEST_HOLD = 604800.0
 #: Why a run's lease can no longer be extended, by its state.
 _LEASE_OVER = {
-    "expired": "its lease ran out and its point was handed out again (its result is still kept)",
+    "expired": "its lease ran out and its point was put back to be handed out again (its "
+    "result is still kept)",
     "done": "its result is in",
     "failed": "its failure is in",
 }
@@ -514,11 +518,15 @@ class CalibrationService:
         self, calibration_id: str, run_id: str, lease_seconds: float
     ) -> dict[str, Any]:
         """Keep a leased run for ``lease_seconds`` more from now, so that a run longer than
-        its first lease is not handed out again; 409 once the lease is over (the run expired
-        and its point went out again, or its result is in: a late result is still kept)."""
+        its first lease is not handed out again: never earlier than the lease already ends,
+        never later than `LONGEST_HOLD` after the run was leased (so a run that hangs cannot
+        hold its point for good). 409 once the lease is over (the run expired and its point
+        was re-queued, or its result is in; a late result is still kept)."""
         now = self.clock()
         known = _RUN_ID.fullmatch(run_id) is not None
-        result = self.store.extend_lease(calibration_id, run_id, now, now + lease_seconds)
+        result = self.store.extend_lease(
+            calibration_id, run_id, now, now + lease_seconds, LONGEST_HOLD
+        )
         self._count("expired", result.expired)
         if not known or result.state is None:
             self.meta(calibration_id)  # 404 for the calibration first, if it is gone
@@ -531,7 +539,7 @@ class CalibrationService:
         return {
             "run_id": run_id,
             "state": "leased",
-            "lease_expires_at": rfc3339(now + lease_seconds),
+            "lease_expires_at": rfc3339(result.expires_at),
         }
 
     async def report(

@@ -57,7 +57,7 @@ exit codes:
   4    status: not finished when --timeout ran out (at once, without --wait)
   5    the calibration failed on the server (worker, status)
   130  interrupted by Ctrl-C; a worker first reports the runs it had in hand
-  143  stopped by SIGTERM, handled like Ctrl-C
+  143  stopped by SIGTERM, handled like Ctrl-C (serve and refitter: a graceful stop, 0)
 
 settings: --url and --token, or HONING_URL and HONING_TOKEN (default URL {DEFAULT_URL});
 creating on a server with an admin key needs --admin-key-file or HONING_ADMIN_KEY.
@@ -380,15 +380,18 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _serve(args: argparse.Namespace) -> int:
+    """Serve until stopped; SIGTERM is the usual way to stop a service, so after the graceful
+    shutdown (requests finished, refit workers stopped) it exits 0, as `honing refitter` does."""
     server = _server_module()
     store = args.store or _default_store_url()
-    server.run_server(
-        args.host,
-        args.port,
-        store,
-        admin_key_file=args.admin_key_file,
-        refit_workers=args.refit_workers,
-    )
+    with contextlib.suppress(Terminated):
+        server.run_server(
+            args.host,
+            args.port,
+            store,
+            admin_key_file=args.admin_key_file,
+            refit_workers=args.refit_workers,
+        )
     return EXIT["ok"]
 
 

@@ -7,7 +7,9 @@ arguments is replaced by that parameter's value. A non-zero exit, a missing or m
 outputs file, or a timeout is reported as a failed run with the tail of the command's stderr.
 While a command runs, the worker extends its run's lease each time half of it has passed, so
 a run longer than its lease is not handed out to another worker; the lease length is then
-only how soon the point of a worker that died goes out again.
+only how soon the point of a worker that died goes out again. Extensions stop at the run
+timeout or, without one, a day after the lease (`EXTEND_LIMIT`): a command that hangs gives
+its point back then.
 
 Stopping is gradual: the first `Worker.stop` stops leasing and lets the commands in hand
 finish and be reported; the second terminates them and reports them as failed; the third
@@ -62,6 +64,10 @@ PROGRESS_POLL = 2.0
 EXTEND_AFTER = 0.5
 #: Longest wait before an extension that failed for want of the server is tried again.
 EXTEND_RETRY = 30.0
+#: Seconds after its lease that a run's lease is extended at most, when there is no
+#: --run-timeout (with one, the command is stopped at it anyway): a command that hangs gives
+#: its point back a day later instead of holding it for good.
+EXTEND_LIMIT = 86400.0
 #: Seconds a worker that is done waits for an extension still in flight; the thread is a
 #: daemon, so one held up by a server that does not answer is left behind.
 EXTEND_JOIN = 1.0
@@ -210,7 +216,9 @@ class Worker:
         self._procs: dict[str, subprocess.Popen[bytes]] = {}
         self._lock = threading.Lock()
         self._outage = Outage(options.max_outage)
-        self._extend_due: dict[str, float] = {}  # run id -> when to extend its lease
+        # run id -> when to extend its lease next, and until when to extend it at all
+        self._extend_due: dict[str, tuple[float, float]] = {}
+        self._extend_wake = threading.Event()  # a run joined the schedule, or the end came
 
     @property
     def stops(self) -> int:
@@ -283,13 +291,19 @@ class Worker:
             # Granted while the worker was stopping (the request was in flight or retrying):
             # not started, their leases expire and the points are handed out again.
             return None
-        extend_at = time.monotonic() + EXTEND_AFTER * self.options.lease_seconds
+        now = time.monotonic()
+        schedule = (
+            now + EXTEND_AFTER * self.options.lease_seconds,
+            now + (self.options.run_timeout or EXTEND_LIMIT),
+        )
         for run in lease.runs:
             thread = threading.Thread(target=self._execute, args=(run,), daemon=True)
             active[str(run["run_id"])] = thread
             with self._lock:
-                self._extend_due[str(run["run_id"])] = extend_at
+                self._extend_due[str(run["run_id"])] = schedule
             thread.start()
+        if lease.runs:
+            self._extend_wake.set()
         self._update(running=len(active))
         if lease.runs:
             return 0.0
@@ -363,6 +377,7 @@ class Worker:
             yield
         finally:
             done.set()
+            self._extend_wake.set()
             thread.join(EXTEND_JOIN)
 
     def _extend_leases(self, done: threading.Event) -> None:
@@ -370,14 +385,15 @@ class Worker:
         while not done.is_set():
             now = time.monotonic()
             with self._lock:
-                due = [rid for rid, when in self._extend_due.items() if when <= now]
-                soonest = min(self._extend_due.values(), default=now + 1.0)
+                due = [rid for rid, (when, _) in self._extend_due.items() if when <= now]
+                soonest = min((when for when, _ in self._extend_due.values()), default=now + 1.0)
             for run_id in due:
                 if done.is_set():
                     return
                 self._extend_one(run_id)
             if not due:
-                done.wait(min(max(soonest - now, 0.01), 1.0))
+                self._extend_wake.wait(min(max(soonest - now, 0.01), 1.0))
+                self._extend_wake.clear()
 
     def _extend_one(self, run_id: str) -> None:
         """Extend one run's lease (one try) and schedule the next extension. A server that
@@ -385,20 +401,25 @@ class Worker:
         already over; 404: a server without extensions): extending is a courtesy, the run
         goes on, and its result is kept however late."""
         seconds = self.options.lease_seconds
+        with self._lock:
+            until = self._extend_due.get(run_id, (0.0, 0.0))[1]
         later: float | None = EXTEND_AFTER * seconds
-        try:
-            self.client.extend_lease(self.calibration_id, run_id, seconds, retry=False)
-        except TRANSIENT:
-            later = min(EXTEND_RETRY, 0.1 * seconds)
-        except Exception:  # nothing here may end the thread: the other runs' leases need it
-            later = None
+        if time.monotonic() >= until:
+            later = None  # held as long as allowed: the lease runs out, the point goes back
+        else:
+            try:
+                self.client.extend_lease(self.calibration_id, run_id, seconds, retry=False)
+            except TRANSIENT:
+                later = min(EXTEND_RETRY, 0.1 * seconds)
+            except Exception:  # nothing here may end the thread: other runs' leases need it
+                later = None
         with self._lock:
             if run_id not in self._extend_due:
                 return  # it finished meanwhile
             if later is None:
                 del self._extend_due[run_id]
             else:
-                self._extend_due[run_id] = time.monotonic() + later
+                self._extend_due[run_id] = (time.monotonic() + later, until)
 
     def _register(self, run_id: str, proc: subprocess.Popen[bytes]) -> None:
         with self._lock:

@@ -6,6 +6,7 @@ import csv
 import io
 from typing import Annotated, Literal
 
+from anyio import to_thread
 from fastapi import APIRouter, Query, Request, Response
 
 from honing.api.body import json_body, json_response, parse_body
@@ -28,18 +29,22 @@ router = APIRouter(prefix="/v1/calibrations/{calibration_id}/runs", tags=["runs"
 _CSV = {"text/csv": {"schema": {"type": "string"}}}
 
 
+# Bodies are read after the calibration and token are checked (`parse_body`, not a body
+# parameter, which FastAPI would validate first): an unknown calibration is 404 and a missing
+# token 401 whatever the body holds.
+
+
 @router.post(
     "",
     response_model=LeaseResponse,
     responses=problem_responses(401, 403, 404, 413, 422, 503),
+    openapi_extra=json_body(LeaseRequest),
 )
 async def lease_runs(
-    body: LeaseRequest,
-    calibration_id: AuthorizedCalibration,
-    service: ServiceDep,
-    request: Request,
+    calibration_id: AuthorizedCalibration, service: ServiceDep, request: Request
 ) -> Response:
     """Lease up to ``count`` points; an empty list comes with Retry-After while work remains."""
+    body = await parse_body(request, LeaseRequest)
     seconds = body.lease_seconds or request.app.state.settings.lease_seconds
     outcome = await service.lease(calibration_id, body.count, body.worker, seconds)
     answer = LeaseResponse(runs=outcome.runs, status=outcome.status)  # type: ignore[arg-type]
@@ -67,18 +72,17 @@ async def report_run(
     "/{run_id}/lease",
     response_model=LeaseExtended,
     responses=problem_responses(401, 403, 404, 409, 413, 422, 503),
+    openapi_extra=json_body(LeaseExtension),
 )
-def extend_lease(
-    run_id: str,
-    body: LeaseExtension,
-    calibration_id: AuthorizedCalibration,
-    service: ServiceDep,
-    request: Request,
-) -> LeaseExtended:
+async def extend_lease(
+    run_id: str, calibration_id: AuthorizedCalibration, service: ServiceDep, request: Request
+) -> Response:
     """Keep a leased run for ``lease_seconds`` more from now (a run longer than its lease);
     409 once its lease is over."""
+    body = await parse_body(request, LeaseExtension)
     seconds = body.lease_seconds or request.app.state.settings.lease_seconds
-    return LeaseExtended(**service.extend_lease(calibration_id, run_id, seconds))
+    answer = await to_thread.run_sync(service.extend_lease, calibration_id, run_id, seconds)
+    return json_response(LeaseExtended(**answer))
 
 
 @router.post(

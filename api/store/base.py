@@ -125,12 +125,13 @@ class FinishResult:
 
 @dataclass(frozen=True)
 class ExtendResult:
-    """What one lease extension did: how many overdue leases it expired first, and the run's
-    state afterwards (None when the run or its calibration does not exist). The lease was
-    extended exactly when the state is "leased"."""
+    """What one lease extension did: how many overdue leases it expired first, the run's
+    state afterwards (None when the run or its calibration does not exist) and, while it is
+    leased, when its lease now ends."""
 
     state: str | None
     expired: int
+    expires_at: float | None = None
 
 
 class Store(Protocol):
@@ -210,10 +211,11 @@ class Store(Protocol):
         """Expire overdue leases; returns how many."""
 
     def extend_lease(
-        self, calibration_id: str, run_id: str, now: float, expires_at: float
+        self, calibration_id: str, run_id: str, now: float, expires_at: float, longest: float
     ) -> ExtendResult:
-        """Expire overdue leases, then move the run's lease expiry to ``expires_at`` if it is
-        still leased (the run's epoch stays: its result is expected as before)."""
+        """Expire overdue leases, then, if the run is still leased, move its lease's end to
+        ``expires_at``, never earlier than it was and never later than ``longest`` seconds
+        after the run was leased (the run's epoch stays: its result is expected as before)."""
 
     def get_run(self, calibration_id: str, run_id: str) -> RunRecord | None:
         """One run, or None."""

@@ -183,10 +183,11 @@ return {1, expired, meta_snapshot(meta, KEYS[6], KEYS[2], KEYS[7], ARGV, 8)}
 )
 
 # KEYS: 1 meta, 2 requeue, 3 leases, 4 run
-# ARGV: 1 run key prefix, 2 now, 3 run id, 4 new expiry time
-# Expires overdue leases, then moves the run's expiry (in its hash and in the leases set) to
-# ARGV[4] if it is still leased; its epoch stays. Returns {expired, state} (state nil when
-# there is no such run), or -1 when the calibration does not exist.
+# ARGV: 1 run key prefix, 2 now, 3 run id, 4 wanted expiry time, 5 longest hold in seconds
+# Expires overdue leases, then, if the run is still leased, moves its expiry (in its hash and
+# in the leases set) to ARGV[4], capped at leased_at + ARGV[5] and never earlier than it was;
+# its epoch stays. Returns {expired, state, expiry} (state nil when there is no such run,
+# expiry only while leased, as stored), or -1 when the calibration does not exist.
 _EXTEND_LEASE = (
     _WRITES
     + _EXPIRE_FN
@@ -194,12 +195,19 @@ _EXTEND_LEASE = (
 local meta = KEYS[1]
 if redis.call('EXISTS', meta) == 0 then return -1 end
 local expired = expire_overdue(meta, KEYS[3], KEYS[2], ARGV[1], ARGV[2])
-local state = redis.call('HGET', KEYS[4], 'state')
-if state == 'leased' then
-  redis.call('HSET', KEYS[4], 'lease_expires_at', ARGV[4])
-  redis.call('ZADD', KEYS[3], ARGV[4], ARGV[3])
+local rk = KEYS[4]
+local state = redis.call('HGET', rk, 'state')
+if state ~= 'leased' then return {expired, state} end
+local current = redis.call('HGET', rk, 'lease_expires_at')
+local cap = tonumber(redis.call('HGET', rk, 'leased_at')) + tonumber(ARGV[5])
+local wanted = ARGV[4]
+if tonumber(wanted) > cap then wanted = string.format('%.17g', cap) end
+if tonumber(wanted) > tonumber(current) then
+  redis.call('HSET', rk, 'lease_expires_at', wanted)
+  redis.call('ZADD', KEYS[3], wanted, ARGV[3])
+  current = wanted
 end
-return {expired, state}
+return {expired, state, current}
 """
 )
 
@@ -747,17 +755,18 @@ class RedisStore:
         return max(int(n), 0)
 
     def extend_lease(
-        self, calibration_id: str, run_id: str, now: float, expires_at: float
+        self, calibration_id: str, run_id: str, now: float, expires_at: float, longest: float
     ) -> ExtendResult:
         k = CalibrationKeys(calibration_id)
         keys = [k.meta, k.requeue, k.leases, k.run(run_id)]
-        args = [k.run_prefix, _time(now), run_id, _time(expires_at)]
+        args = [k.run_prefix, _time(now), run_id, _time(expires_at), _time(longest)]
         with self._guard():
             out, _ = self._pipelined(self._extend_lease, keys, args, durable=True)
         if isinstance(out, int):  # no such calibration
             return ExtendResult(None, 0)
         state = out[1] if len(out) > 1 else None
-        return ExtendResult(None if state is None else str(_s(state)), int(out[0]))
+        expiry = float(out[2]) if len(out) > 2 else None  # float() reads the bytes too
+        return ExtendResult(None if state is None else str(_s(state)), int(out[0]), expiry)
 
     def get_run(self, calibration_id: str, run_id: str) -> RunRecord | None:
         k = CalibrationKeys(calibration_id)

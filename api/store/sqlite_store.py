@@ -455,22 +455,26 @@ class SqliteStore:
             return self._expire_overdue(db, calibration_id, now)
 
     def extend_lease(
-        self, calibration_id: str, run_id: str, now: float, expires_at: float
+        self, calibration_id: str, run_id: str, now: float, expires_at: float, longest: float
     ) -> ExtendResult:
         with self._write() as db:
             if not _exists(db, calibration_id):
                 return ExtendResult(None, 0)
             expired = self._expire_overdue(db, calibration_id, now)
             db.execute(
-                "UPDATE runs SET lease_expires_at = ? "
+                "UPDATE runs SET lease_expires_at = "
+                "MAX(lease_expires_at, MIN(?, leased_at + ?)) "
                 "WHERE calibration_id = ? AND run_id = ? AND state = 'leased'",
-                (expires_at, calibration_id, run_id),
+                (expires_at, longest, calibration_id, run_id),
             )
             row = db.execute(
-                "SELECT state FROM runs WHERE calibration_id = ? AND run_id = ?",
+                "SELECT state, lease_expires_at FROM runs WHERE calibration_id = ? AND run_id = ?",
                 (calibration_id, run_id),
             ).fetchone()
-        return ExtendResult(None if row is None else str(row[0]), expired)
+        if row is None:
+            return ExtendResult(None, expired)
+        leased = row[0] == "leased"
+        return ExtendResult(str(row[0]), expired, float(row[1]) if leased else None)
 
     def get_run(self, calibration_id: str, run_id: str) -> RunRecord | None:
         with self._read() as db:

@@ -357,3 +357,40 @@ def test_a_bad_extension_is_422_and_changes_nothing(
     assert "lease_seconds" in json.dumps(problem)
     clock.now += 11  # the lease was not extended: it is overdue now
     assert _states(client, cal)[run["run_id"]] == "expired"
+
+
+def test_an_extension_never_shortens_a_lease_and_stops_at_seven_days(
+    client: AppClient, clock: FakeClock
+) -> None:
+    cal = create(client)
+    (run,) = lease(client, cal, 1, lease_seconds=7200)
+    leased = clock.now
+    body = _extend(client, cal, run["run_id"], lease_seconds=60).json()
+    assert (
+        abs(datetime.fromisoformat(body["lease_expires_at"]).timestamp() - (leased + 7200)) < 0.01
+    )
+    # A run that hangs cannot hold its point for good: at most 7 days after it was leased.
+    clock.now += 100
+    body = _extend(client, cal, run["run_id"], lease_seconds=604800).json()
+    week = leased + 604800
+    assert abs(datetime.fromisoformat(body["lease_expires_at"]).timestamp() - week) < 0.01
+    clock.now = week + 1
+    assert _states(client, cal)[run["run_id"]] == "expired"
+
+
+@pytest.mark.parametrize("route", ["lease", "extend"])
+def test_bodies_are_read_after_the_calibration_and_the_token(client: AppClient, route: str) -> None:
+    # API.md: an unknown calibration is 404 whatever token comes with it; a missing token is
+    # 401. Neither depends on what the body holds.
+    cal = create(client)
+    path = "runs" if route == "lease" else "runs/r1/lease"
+    method = client.post if route == "lease" else client.put
+    bad = {"content": b"{not json", "headers": {"Content-Type": "application/json"}}
+    unknown = method(
+        f"/v1/calibrations/nope/{path}", **{**bad, "headers": {**bad["headers"], **cal.headers}}
+    )  # type: ignore[dict-item]
+    assert_problem(unknown, 404)
+    assert_problem(method(f"{cal.url}/{path}", **bad), 401)  # type: ignore[arg-type]
+    assert_problem(
+        method(f"{cal.url}/{path}", **{**bad, "headers": {**bad["headers"], **cal.headers}}), 422
+    )  # type: ignore[dict-item]

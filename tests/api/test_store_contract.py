@@ -244,8 +244,8 @@ def test_a_written_report_counts_the_leases_it_expired(store: Store, steps: Step
 def test_extend_lease_moves_the_expiry_and_keeps_the_epoch(store: Store, steps: Steps) -> None:
     make(store, proposals=3)
     (run,) = steps.lease("c1", 1, "w", 0.0, 10.0, 100).runs
-    extended = store.extend_lease("c1", run.run_id, 5.0, 25.0)
-    assert (extended.state, extended.expired) == ("leased", 0)
+    extended = store.extend_lease("c1", run.run_id, 5.0, 25.0, 1000.0)
+    assert extended == ExtendResult("leased", 0, 25.0)
     stored = store.get_run("c1", run.run_id)
     assert stored is not None and stored.lease_expires_at == 25.0 and stored.epoch == run.epoch
     # Past the first expiry, before the new one: still leased, nothing re-queued.
@@ -254,19 +254,36 @@ def test_extend_lease_moves_the_expiry_and_keeps_the_epoch(store: Store, steps: 
     assert steps.finish("c1", run.run_id, run.epoch, "done", done(1.0), 24.0).meta is not None
 
 
+def test_extend_lease_never_shortens_and_stops_at_the_longest_hold(
+    store: Store, steps: Steps
+) -> None:
+    make(store, proposals=3)
+    (run,) = steps.lease("c1", 1, "w", 100.25, 50.0, 100).runs  # ends at 150.25
+    assert store.extend_lease("c1", run.run_id, 110.0, 120.0, 1000.0).expires_at == 150.25
+    # Capped at leased_at + longest, and what is stored is what the answer says.
+    capped = store.extend_lease("c1", run.run_id, 120.0, 5000.0, 1000.0)
+    assert capped == ExtendResult("leased", 0, 1100.25)
+    stored = store.get_run("c1", run.run_id)
+    assert stored is not None and stored.lease_expires_at == 1100.25
+    assert store.extend_lease("c1", run.run_id, 130.0, 9000.0, 1000.0).expires_at == 1100.25
+    # The leases set follows the hash: the run expires at the cap, not before.
+    assert steps.lease("c1", 1, "w", 1100.0, 50.0, 100).expired == 0
+    assert steps.lease("c1", 1, "w", 1100.5, 50.0, 100).expired == 1
+
+
 def test_extend_lease_refuses_what_is_no_longer_leased(store: Store, steps: Steps) -> None:
     make(store, proposals=3)
     short, kept = steps.lease("c1", 2, "w", 0.0, 10.0, 100).runs
-    assert store.extend_lease("c1", kept.run_id, 5.0, 60.0).state == "leased"
+    assert store.extend_lease("c1", kept.run_id, 5.0, 60.0, 1000.0).state == "leased"
     # The extension step expires the overdue lease first, then finds it no longer leased.
-    late = store.extend_lease("c1", short.run_id, 11.0, 70.0)
-    assert (late.state, late.expired) == ("expired", 1)
+    late = store.extend_lease("c1", short.run_id, 11.0, 70.0, 1000.0)
+    assert late == ExtendResult("expired", 1, None)
     stored = store.get_run("c1", short.run_id)
     assert stored is not None and stored.lease_expires_at == 10.0
     steps.finish("c1", kept.run_id, kept.epoch, "done", done(1.0), 12.0)
-    assert store.extend_lease("c1", kept.run_id, 13.0, 80.0).state == "done"
-    assert store.extend_lease("c1", "r999", 13.0, 80.0) == ExtendResult(None, 0)
-    assert store.extend_lease("nope", "r1", 13.0, 80.0) == ExtendResult(None, 0)
+    assert store.extend_lease("c1", kept.run_id, 13.0, 80.0, 1000.0) == ExtendResult("done", 0)
+    assert store.extend_lease("c1", "r999", 13.0, 80.0, 1000.0) == ExtendResult(None, 0)
+    assert store.extend_lease("nope", "r1", 13.0, 80.0, 1000.0) == ExtendResult(None, 0)
     meta = store.get_meta("c1")
     assert meta is not None and (meta.done, meta.leased, meta.queued) == (1, 0, 2)
 

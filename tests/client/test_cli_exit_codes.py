@@ -6,9 +6,11 @@ import signal
 import subprocess
 import sys
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+import httpx
 import pytest
 
 from honing.client.cli import main
@@ -459,3 +461,37 @@ def test_serve_passes_its_options_and_a_default_store(
     ((args, kwargs),) = calls
     assert args == ("127.0.0.1", 9001, f"sqlite:///{tmp_path}/honing/honing.db")
     assert kwargs == {"admin_key_file": None, "refit_workers": 2}
+
+
+def test_serve_stops_gracefully_on_sigterm_with_0(
+    unused_port: Callable[[], int], tmp_path: Path
+) -> None:
+    # SIGTERM is how a service is stopped: after the graceful shutdown (refit worker stopped
+    # by the server itself, not left to notice its parent is gone) the exit status is 0.
+    port = unused_port()
+    env = {k: v for k, v in os.environ.items() if not k.startswith("HONING_")}
+    argv = ["serve", "--port", str(port), "--store", f"sqlite:///{tmp_path}/s.db"]
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "honing.client.cli", *argv],
+        env=env,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    try:
+        deadline = time.monotonic() + 60
+        while True:
+            try:
+                if httpx.get(f"http://127.0.0.1:{port}/healthz", timeout=1).status_code == 200:
+                    break
+            except httpx.TransportError:
+                pass
+            assert proc.poll() is None and time.monotonic() < deadline, "server did not start"
+            time.sleep(0.1)
+        proc.send_signal(signal.SIGTERM)
+        _, err = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.communicate()
+    assert proc.returncode == 0, err
+    assert "Traceback" not in err and "serving process is gone" not in err

@@ -14,6 +14,8 @@ from typing import Any
 
 import pytest
 
+from honing.client import worker as worker_module
+from honing.client._client import Client
 from honing.client.worker import ERROR_CHARS, parameter_environment
 
 CAL = "/v1/calibrations/c1"
@@ -392,3 +394,25 @@ def test_the_worker_ends_without_waiting_for_a_hung_extension(
             proc.communicate()
     assert proc.returncode == 3, err
     assert reports(fake_server) == [{"outputs": {"y": [1.0]}}]
+
+
+def test_extensions_stop_a_day_after_the_lease_so_a_hung_command_gives_its_point_back(
+    fake_server: Any, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Without --run-timeout a command may hang for good; its lease is extended for at most
+    # EXTEND_LIMIT (a day; 1.2 s here), then left to run out so its point goes out again.
+    monkeypatch.setattr(worker_module, "EXTEND_LIMIT", 1.2)
+    one_run_then(fake_server)
+    fake_server.on(
+        "PUT",
+        f"{CAL}/runs/r1/lease",
+        {"run_id": "r1", "state": "leased", "lease_expires_at": "2026-01-01T00:00:01Z"},
+    )
+    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "done", "trust": 1.0})
+    slow = [*SLOW[:2], SLOW[2].replace("1.8", "2.6")]
+    options = worker_module.WorkerOptions(command=slow, lease_seconds=1.0)
+    with Client(fake_server.url, "t") as client:
+        progress = worker_module.Worker(client, "c1", options).run()
+    assert progress.done == 1
+    # At 0.5 and 1.0 s; the one due at 1.5 s is past the limit, and none follow until 2.6 s.
+    assert len(fake_server.bodies("PUT", f"{CAL}/runs/r1/lease")) == 2

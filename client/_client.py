@@ -257,16 +257,18 @@ class Client:
         lease_seconds: float | None = None,
         *,
         retry: bool = True,
+        timeout: float | None = None,
     ) -> dict[str, Any]:
         """Keep a leased run for ``lease_seconds`` more from now (the server's lease time by
         default); `Conflict` once its lease is over. Extending again is harmless, so it is
-        retried like any PUT; ``retry=False`` tries once, for a caller that keeps its own
-        schedule (the worker)."""
+        retried like any PUT; ``retry=False`` tries once and ``timeout`` (seconds) bounds the
+        try, for a caller that keeps its own schedule (the worker)."""
         body: dict[str, Any] = {}
         if lease_seconds is not None:
             body["lease_seconds"] = lease_seconds
         path = _path(calibration_id, "runs", run_id, "lease")
-        return self._json("PUT", path, json=body, attempts=None if retry else 1)
+        attempts = None if retry else 1
+        return self._json("PUT", path, json=body, attempts=attempts, timeout=timeout)
 
     def report(
         self,
@@ -384,6 +386,7 @@ class Client:
         persistent: bool = False,
         retry_unsafe: bool = False,
         attempts: int | None = None,
+        timeout: float | None = None,
     ) -> httpx.Response:
         request_headers = dict(headers or {})
         secret = self.admin_key if auth == "admin" else self.token if auth == "token" else None
@@ -395,7 +398,12 @@ class Client:
             last_try = not persistent and attempt + 1 >= (attempts or self.retry.attempts)
             try:
                 response = self._http.request(
-                    method, path, json=json, params=params, headers=request_headers
+                    method,
+                    path,
+                    json=json,
+                    params=params,
+                    headers=request_headers,
+                    timeout=httpx.USE_CLIENT_DEFAULT if timeout is None else timeout,
                 )
             except httpx.TransportError as exc:
                 unsent = isinstance(exc, httpx.ConnectError | httpx.ConnectTimeout)

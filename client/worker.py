@@ -64,6 +64,9 @@ PROGRESS_POLL = 2.0
 EXTEND_AFTER = 0.5
 #: Longest wait before an extension that failed for want of the server is tried again.
 EXTEND_RETRY = 30.0
+#: Longest wait for one extension's answer (less for short leases: a quarter of the lease),
+#: so that one call held up by a stalled server does not hold up the others past their end.
+EXTEND_TIMEOUT = 10.0
 #: Seconds after its lease that a run's lease is extended at most, when there is no
 #: --run-timeout (with one, the command is stopped at it anyway): a command that hangs gives
 #: its point back a day later instead of holding it for good.
@@ -408,7 +411,13 @@ class Worker:
             later = None  # held as long as allowed: the lease runs out, the point goes back
         else:
             try:
-                self.client.extend_lease(self.calibration_id, run_id, seconds, retry=False)
+                self.client.extend_lease(
+                    self.calibration_id,
+                    run_id,
+                    seconds,
+                    retry=False,
+                    timeout=min(EXTEND_TIMEOUT, 0.25 * seconds),
+                )
             except TRANSIENT:
                 later = min(EXTEND_RETRY, 0.1 * seconds)
             except Exception:  # nothing here may end the thread: other runs' leases need it

@@ -416,3 +416,37 @@ def test_extensions_stop_a_day_after_the_lease_so_a_hung_command_gives_its_point
     assert progress.done == 1
     # At 0.5 and 1.0 s; the one due at 1.5 s is past the limit, and none follow until 2.6 s.
     assert len(fake_server.bodies("PUT", f"{CAL}/runs/r1/lease")) == 2
+
+
+def test_one_stalled_extension_does_not_hold_up_the_others(fake_server: Any, cli: Any) -> None:
+    # The server never answers r1's extension: each try gives up after a quarter of the
+    # lease, so r2's lease is still extended on time.
+    runs = [{"run_id": f"r{i}", "parameters": {"a": float(i)}} for i in (1, 2)]
+    leases = iter([{"runs": runs, "status": "collecting"}])
+    fake_server.on_call(
+        "POST",
+        f"{CAL}/runs",
+        lambda body: (200, next(leases, {"runs": [], "status": "budget_exhausted"}), {}),
+    )
+    release = threading.Event()
+
+    def hang(body: Any) -> tuple[int, Any, dict[str, str]]:
+        release.wait(60)
+        return 200, {"run_id": "r1", "state": "leased", "lease_expires_at": "x"}, {}
+
+    fake_server.on_call("PUT", f"{CAL}/runs/r1/lease", hang)
+    fake_server.on(
+        "PUT", f"{CAL}/runs/r2/lease", {"run_id": "r2", "state": "leased", "lease_expires_at": "x"}
+    )
+    for rid in ("r1", "r2"):
+        fake_server.on("PUT", f"{CAL}/runs/{rid}", {"run_id": rid, "state": "done", "trust": 1.0})
+    try:
+        result = cli(
+            "worker", "c1", "-q", "-j", "2", "--lease-seconds", "1", "--", *SLOW,
+            url=fake_server.url, token="t",
+        )  # fmt: skip
+    finally:
+        release.set()
+    assert result.returncode == 3, result.stderr
+    # Due at about 0.5, 1.0 and 1.5 s of its 1.8 s run; at least two of them arrive.
+    assert len(fake_server.bodies("PUT", f"{CAL}/runs/r2/lease")) >= 2

@@ -50,14 +50,15 @@ EXIT = {
 EPILOG = f"""\
 exit codes:
   0    success; for worker, status and demo: the calibration converged
-  1    error: the server refused the request or could not be reached, or an input
-       file is unusable (one line on stderr says which)
+  1    error: the server refused the request or could not be reached, an input file
+       is unusable, or a server cannot start (one line on stderr says which)
   2    usage error: unknown command or option, missing argument
   3    the run budget was used up before convergence (worker, status, demo)
   4    status: not finished when --timeout ran out (at once, without --wait)
-  5    the calibration failed on the server (worker, status)
+  5    the calibration failed on the server (worker, status, demo)
   130  interrupted by Ctrl-C; a worker first reports the runs it had in hand
-  143  stopped by SIGTERM, handled like Ctrl-C (serve and refitter: a graceful stop, 0)
+  143  stopped by SIGTERM, handled like Ctrl-C
+serve and refitter stop gracefully on Ctrl-C or SIGTERM and exit 0.
 
 settings: --url and --token, or HONING_URL and HONING_TOKEN (default URL {DEFAULT_URL});
 creating on a server with an admin key needs --admin-key-file or HONING_ADMIN_KEY.
@@ -334,7 +335,12 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = command("runs", "write every run (parameters, outputs, state, trust) as CSV")
     p.add_argument("id", metavar="ID", help="calibration id")
-    p.add_argument("-o", "--output", metavar="FILE", help="CSV file (default: stdout)")
+    p.add_argument(
+        "-o",
+        "--output",
+        metavar="FILE",
+        help="CSV file, JSON if it ends in .json (default: stdout)",
+    )
     p.add_argument("--state", choices=["leased", "done", "failed", "expired"], help="only these")
     p.add_argument("--json", action="store_true", help="JSON instead of CSV")
     p.set_defaults(handler=_runs)
@@ -384,7 +390,8 @@ def _serve(args: argparse.Namespace) -> int:
     shutdown (requests finished, refit workers stopped) it exits 0, as `honing refitter` does."""
     server = _server_module()
     store = args.store or _default_store_url()
-    with contextlib.suppress(Terminated):
+    _check_server_settings(store, args.admin_key_file)
+    try:
         server.run_server(
             args.host,
             args.port,
@@ -392,12 +399,33 @@ def _serve(args: argparse.Namespace) -> int:
             admin_key_file=args.admin_key_file,
             refit_workers=args.refit_workers,
         )
+    except Terminated:
+        pass
+    except SystemExit as exc:  # uvicorn's own exit when the app fails to start (status 3)
+        if exc.code in (0, None):
+            raise
+        raise SettingsError("the server could not start; its log above says why") from None
     return EXIT["ok"]
 
 
 def _refitter(args: argparse.Namespace) -> int:
-    _server_module().run_refitter(args.store)
+    server = _server_module()
+    _check_server_settings(args.store, None)
+    server.run_refitter(args.store)
     return EXIT["ok"]
+
+
+def _check_server_settings(store: str, admin_key_file: str | None) -> None:
+    """One-line errors (exit 1) for a store URL or key file the server cannot use, before
+    it starts: once it runs, such a mistake ends it with a traceback in its log."""
+    from honing.api.store import check_store_url
+
+    try:
+        check_store_url(store)
+    except ValueError as exc:
+        raise SettingsError(str(exc)) from None
+    if admin_key_file:
+        _read_secret(admin_key_file)
 
 
 def _max_outage_option(parser: argparse.ArgumentParser, when: str) -> None:
@@ -528,8 +556,9 @@ def _samples(args: argparse.Namespace) -> int:
 
 
 def _runs(args: argparse.Namespace) -> int:
+    as_json = args.json or str(args.output or "").lower().endswith(".json")
     with _client(args) as client:
-        if args.json:
+        if as_json:
             text = json.dumps({"runs": client.runs(args.id, args.state)}, indent=2) + "\n"
         else:
             text = client.runs_csv(args.id, args.state)

@@ -61,9 +61,10 @@ def read_runs(path: str | Path, calibration: Mapping[str, Any]) -> list[dict[str
     A ``.json`` file holds ``{"runs": [...]}`` or a list of ``{"parameters", "outputs"}``.
     A CSV file has one row per run: a column per parameter (named as in the spec) and a
     column per output value, named ``<observation>[<i>]`` (also accepted: ``<observation>.<i>``,
-    ``<observation>_<i>``, ``<observation>:<i>``, 0-based). Other columns are ignored, and
-    rows whose ``state`` column says anything but ``done`` are skipped, so a table written by
-    ``honing runs -o`` can be imported into another calibration of the same model.
+    ``<observation>_<i>``, ``<observation>:<i>``, 0-based). Other columns (and other fields
+    of a JSON run) are ignored, and runs whose ``state`` says anything but ``done`` are
+    skipped, so what ``honing runs -o`` writes, as CSV or JSON, can be imported into another
+    calibration of the same model.
     """
     path = Path(path)
     try:
@@ -84,7 +85,11 @@ def read_runs(path: str | Path, calibration: Mapping[str, Any]) -> list[dict[str
                     f"{path}: run {i} must be an object {{'parameters', 'outputs'}}, "
                     f"got {type(run).__name__}"
                 )
-        return runs
+        return [
+            {"parameters": run.get("parameters"), "outputs": run.get("outputs")}
+            for run in runs
+            if run.get("state", "done") == "done"
+        ]
     return _runs_from_csv(text, calibration, path)
 
 

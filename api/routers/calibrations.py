@@ -21,7 +21,7 @@ router = APIRouter(prefix="/v1/calibrations", tags=["calibrations"])
 def create_calibration(body: SpecRequest, service: ServiceDep) -> CreateResponse:
     """Create a calibration from a spec; the answer carries its token (shown only once).
 
-    A null optional field or section means its default, as the schema says.
+    A null optional section means its defaults, as the schema says.
     """
     spec = body.model_dump(exclude_unset=True, exclude_none=True)
     calibration_id, token, state = service.create(spec)

@@ -495,3 +495,39 @@ def test_serve_stops_gracefully_on_sigterm_with_0(
             proc.communicate()
     assert proc.returncode == 0, err
     assert "Traceback" not in err and "serving process is gone" not in err
+
+
+@pytest.mark.parametrize(
+    ("argv", "fragment"),
+    [
+        (["serve", "--store", "bogus://x"], "unsupported store URL"),
+        (
+            ["serve", "--store", "sqlite:////tmp/x.db", "--admin-key-file", "/nonexistent"],
+            "key file",
+        ),
+        (["refitter", "--store", "bogus://x"], "unsupported store URL"),
+    ],
+)
+def test_server_settings_it_cannot_use_are_one_line_and_exit_1(
+    cli: Any, one_line_error: Any, argv: list[str], fragment: str
+) -> None:
+    # Checked before the server starts; once running, such a mistake ended it with uvicorn's
+    # status 3 (which reads as "budget exhausted") and a traceback.
+    result = cli(*argv)
+    assert result.returncode == 1
+    one_line_error(result, fragment)
+
+
+def test_a_server_that_fails_to_start_exits_1(
+    cli: Any, tmp_path: Path, unused_port: Callable[[], int]
+) -> None:
+    # A store file that cannot be made: the app's start-up fails inside the server.
+    blocker = tmp_path / "file"
+    blocker.write_text("")
+    port = str(unused_port())
+    result = cli("serve", "--port", port, "--store", f"sqlite:///{blocker}/sub/x.db")
+    assert result.returncode == 1
+    assert (
+        result.stderr.splitlines()[-1]
+        == "honing: the server could not start; its log above says why"
+    )

@@ -137,6 +137,14 @@ def test_worker_runs_a_calibration_to_its_end(
     assert result.stdout.strip() == f"imported {len(done)} runs into {other}"
     info = json.loads(cli("status", other, "--json", url=live_server, token=other_token).stdout)
     assert info["runs_completed"] == len(done)
+    # So does the JSON one ('-o' with a .json name), whole run records and all.
+    records = tmp_path / "runs.json"
+    assert cli("runs", cid, "-o", str(records), url=live_server, token=token).returncode == 0
+    assert len(json.loads(records.read_text())["runs"]) == len(runs)
+    third, third_token = create("imported-json")
+    result = cli("import", third, str(records), url=live_server, token=third_token)
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip() == f"imported {len(done)} runs into {third}"
 
 
 def test_failed_runs_carry_the_end_of_stderr(

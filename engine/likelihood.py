@@ -215,7 +215,12 @@ def noise_scale_draws(misfit: np.ndarray, n_values: int, rng: np.random.Generato
     -------
     ndarray, shape (n_points,)
     """
-    return np.sqrt(np.asarray(misfit) / rng.chisquare(n_values, size=np.shape(misfit)))
+    # A misfit is a sum of squares, but its constant part (`OutputReduction.misfit`) is a
+    # difference of two: where the surrogate reproduces the data exactly, rounding can leave
+    # it a hair below 0 (-1.3e-15 seen), and its square root would be NaN. The log-likelihood
+    # clamps it the same way; a constant offset of that size changes nothing else.
+    misfit = np.maximum(np.asarray(misfit, dtype=float), 0.0)
+    return np.sqrt(misfit / rng.chisquare(n_values, size=np.shape(misfit)))
 
 
 def _spectrum(centred: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

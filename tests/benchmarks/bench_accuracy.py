@@ -22,8 +22,8 @@ and writes ``accuracy.md`` (table), ``accuracy.json`` and ``error_vs_runs_<key>.
 fit's design; data and references are fixed) and adds a table of medians and ranges;
 ``--only B3`` runs the problems whose key starts with that, ``--no-emcee`` skips (c).
 
-With ``--seeds 3`` and the default two worker processes (``--jobs``), 275 s on one shared
-2-core machine and 1255 s on a slower one; one seed takes about a third of that.
+With ``--seeds 3`` and the default two worker processes (``--jobs``), 275 s, 640 s and 1255 s
+on three shared 2-core machines; one seed takes about a third of that.
 Needs the stored B3 references (`make_references.py`).
 
 Figures (each against the problem's reference posterior):

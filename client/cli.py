@@ -77,7 +77,9 @@ and "{name}" in its arguments is replaced by that parameter's value. COMMAND run
 current folder. A non-zero exit, a missing or malformed outputs file, or a run longer than
 --run-timeout is reported as a failed run, with the end of COMMAND's stderr as the message.
 A COMMAND that cannot start at all stops the worker (exit 1) and reports nothing. While
-COMMAND runs, its lease is extended, so a run may take longer than --lease-seconds.
+COMMAND runs, its lease is extended, so a run may take longer than --lease-seconds; the
+extensions stop at --run-timeout or, without one, a day after the lease (a COMMAND that
+hangs then gives its point back): set --run-timeout for runs that can take longer.
 
 The worker exits when the calibration stops handing out work: 0 once converged, 3 when the
 run budget is used up. Ctrl-C stops leasing and waits for the runs in hand to finish and be
@@ -290,7 +292,8 @@ def build_parser() -> argparse.ArgumentParser:
         "--run-timeout",
         type=float,
         metavar="S",
-        help="seconds one run may take before it is stopped and reported failed",
+        help="seconds one run may take before it is stopped and reported failed (its lease "
+        "is extended that long; without this option, a day)",
     )
     p.add_argument(
         "--lease-seconds",
@@ -803,6 +806,8 @@ def _read_secret(path: str) -> str:
         secret = Path(path).read_text(encoding="utf-8").strip()
     except OSError as exc:
         raise SettingsError(f"cannot read the key file {path}: {exc.strerror or exc}") from None
+    except UnicodeDecodeError:
+        raise SettingsError(f"the key file {path} is not UTF-8 text") from None
     if not secret:
         raise SettingsError(f"the key file {path} is empty")
     return secret

@@ -62,9 +62,9 @@ def read_runs(path: str | Path, calibration: Mapping[str, Any]) -> list[dict[str
     A CSV file has one row per run: a column per parameter (named as in the spec) and a
     column per output value, named ``<observation>[<i>]`` (also accepted: ``<observation>.<i>``,
     ``<observation>_<i>``, ``<observation>:<i>``, 0-based). Other columns (and other fields
-    of a JSON run) are ignored, and runs whose ``state`` says anything but ``done`` are
-    skipped, so what ``honing runs -o`` writes, as CSV or JSON, can be imported into another
-    calibration of the same model.
+    of a JSON run) are ignored, and runs without outputs or whose ``state`` says anything but
+    ``done`` are skipped, so what ``honing runs -o`` writes, as CSV or JSON, can be imported
+    into another calibration of the same model.
     """
     path = Path(path)
     try:
@@ -88,7 +88,7 @@ def read_runs(path: str | Path, calibration: Mapping[str, Any]) -> list[dict[str
         return [
             {"parameters": run.get("parameters"), "outputs": run.get("outputs")}
             for run in runs
-            if run.get("state", "done") == "done"
+            if run.get("state") in (None, "", "done") and run.get("outputs") is not None
         ]
     return _runs_from_csv(text, calibration, path)
 

@@ -7,9 +7,10 @@ arguments is replaced by that parameter's value. A non-zero exit, a missing or m
 outputs file, or a timeout is reported as a failed run with the tail of the command's stderr.
 While a command runs, the worker extends its run's lease each time half of it has passed, so
 a run longer than its lease is not handed out to another worker; the lease length is then
-only how soon the point of a worker that died goes out again. Extensions stop at the run
-timeout or, without one, a day after the lease (`EXTEND_LIMIT`): a command that hangs gives
-its point back then.
+only how soon the point of a worker that died goes out again. While the command runs,
+extensions stop at the run timeout (plus the time to stop the command) or, without one, a
+day after the lease (`EXTEND_LIMIT`): a command that hangs gives its point back then. Once
+the command is over, the lease is extended until its result is reported.
 
 Stopping is gradual: the first `Worker.stop` stops leasing and lets the commands in hand
 finish and be reported; the second terminates them and reports them as failed; the third
@@ -295,10 +296,11 @@ class Worker:
             # not started, their leases expire and the points are handed out again.
             return None
         now = time.monotonic()
-        schedule = (
-            now + EXTEND_AFTER * self.options.lease_seconds,
-            now + (self.options.run_timeout or EXTEND_LIMIT),
-        )
+        # With --run-timeout the command is stopped then, which may take two grace periods
+        # (SIGTERM, then SIGKILL to its group); the lease must last until its failure is in.
+        timeout = self.options.run_timeout
+        limit = timeout + 2 * KILL_GRACE if timeout else EXTEND_LIMIT
+        schedule = (now + EXTEND_AFTER * self.options.lease_seconds, now + limit)
         for run in lease.runs:
             thread = threading.Thread(target=self._execute, args=(run,), daemon=True)
             active[str(run["run_id"])] = thread
@@ -322,6 +324,7 @@ class Worker:
         outcome = "error"
         try:
             result = self._run(run_id, run)
+            self._extend_until_reported(run_id)
             if not result.started:
                 self.error = self.error or SettingsError(result.error or "cannot start")
                 if not self._stops:  # one stop however many runs fail to start: a further
@@ -369,6 +372,13 @@ class Worker:
         except Conflict:
             return "conflict"
         return "failed"
+
+    def _extend_until_reported(self, run_id: str) -> None:
+        """The command is over: its lease is extended, whatever the limit, until the result
+        is in (a report the server is slow to take must not lose it meanwhile)."""
+        with self._lock:
+            if run_id in self._extend_due:
+                self._extend_due[run_id] = (self._extend_due[run_id][0], math.inf)
 
     @contextlib.contextmanager
     def _extending(self) -> Iterator[None]:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from urllib.parse import urlsplit
+
 from honing.api.store.base import (
     CalibrationMeta,
     ExtendResult,
@@ -33,11 +35,20 @@ _REDIS = ("redis://", "rediss://", "unix://")
 
 
 def check_store_url(url: str) -> None:
-    """Raise ValueError unless ``url`` names a supported store (nothing is opened)."""
+    """Raise ValueError unless ``url`` names a supported store in a form it can open: the
+    scheme, and for a Redis server a numeric port and database (nothing is opened)."""
+    usage = f"unsupported store URL {url!r}: use sqlite:///path.db or redis://host:port/db"
     if not url.startswith(_SQLITE + _REDIS):
-        raise ValueError(
-            f"unsupported store URL {url!r}: use sqlite:///path.db or redis://host:port/db"
-        )
+        raise ValueError(usage)
+    if url.startswith(("redis://", "rediss://")):
+        parts = urlsplit(url)
+        try:
+            parts.port  # noqa: B018 - raises ValueError for a port that is not a number
+        except ValueError as exc:
+            raise ValueError(f"{usage} ({exc})") from None
+        database = parts.path.strip("/")
+        if database and not database.isdigit():
+            raise ValueError(f"{usage} (the database must be a number, not {database!r})")
 
 
 def open_store(url: str) -> Store:

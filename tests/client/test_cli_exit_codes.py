@@ -37,6 +37,8 @@ def test_worker_help_explains_the_protocol(capsys: pytest.CaptureFixture[str]) -
     text = capsys.readouterr().out
     for word in ("HONING_PARAMS", "HONING_P_<name>", "HONING_RUN_ID", "HONING_OUTPUTS", "{name}"):
         assert word in text
+    # How long a running command's lease is extended, and how to say longer.
+    assert "a day after the lease" in " ".join(text.split())
 
 
 def test_usage_errors_exit_2(capsys: pytest.CaptureFixture[str]) -> None:
@@ -506,6 +508,8 @@ def test_serve_stops_gracefully_on_sigterm_with_0(
             "key file",
         ),
         (["refitter", "--store", "bogus://x"], "unsupported store URL"),
+        (["refitter", "--store", "redis://localhost:abc/0"], "Port could not be cast"),
+        (["refitter", "--store", "redis://localhost:6379/x"], "database must be a number"),
     ],
 )
 def test_server_settings_it_cannot_use_are_one_line_and_exit_1(
@@ -516,6 +520,16 @@ def test_server_settings_it_cannot_use_are_one_line_and_exit_1(
     result = cli(*argv)
     assert result.returncode == 1
     one_line_error(result, fragment)
+
+
+def test_a_key_file_that_is_not_text_is_one_line(
+    cli: Any, one_line_error: Any, tmp_path: Path
+) -> None:
+    key = tmp_path / "key"
+    key.write_bytes(b"\xff\xfe\x00key")
+    result = cli("serve", "--store", f"sqlite:///{tmp_path}/x.db", "--admin-key-file", str(key))
+    assert result.returncode == 1
+    one_line_error(result, "not UTF-8")
 
 
 def test_a_server_that_fails_to_start_exits_1(

@@ -450,3 +450,26 @@ def test_one_stalled_extension_does_not_hold_up_the_others(fake_server: Any, cli
     assert result.returncode == 3, result.stderr
     # Due at about 0.5, 1.0 and 1.5 s of its 1.8 s run; at least two of them arrive.
     assert len(fake_server.bodies("PUT", f"{CAL}/runs/r2/lease")) >= 2
+
+
+def test_a_lease_outlasts_the_stopping_of_a_timed_out_command(fake_server: Any, cli: Any) -> None:
+    # The command ignores SIGTERM: stopped at --run-timeout 1.5 s, it dies of SIGKILL a grace
+    # period (5 s) later. Its lease is extended all that time, until the failure is reported
+    # (stopping at 1.5 s let a 1 s lease run out and the point go to another worker).
+    one_run_then(fake_server)
+    fake_server.on(
+        "PUT",
+        f"{CAL}/runs/r1/lease",
+        {"run_id": "r1", "state": "leased", "lease_expires_at": "2026-01-01T00:00:01Z"},
+    )
+    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "failed", "trust": None})
+    stubborn = "import signal, time; signal.signal(signal.SIGTERM, signal.SIG_IGN); time.sleep(60)"
+    result = cli(
+        "worker", "c1", "-q", "--lease-seconds", "1", "--run-timeout", "1.5", "--",
+        sys.executable, "-c", stubborn, url=fake_server.url, token="t",
+    )  # fmt: skip
+    assert result.returncode == 3, result.stderr
+    (failure,) = reports(fake_server)
+    assert "timed out" in failure["error"]
+    # Every half second from 0.5 s to about 6.5 s; 2 would mean they stopped at 1.5 s.
+    assert len(fake_server.bodies("PUT", f"{CAL}/runs/r1/lease")) >= 8

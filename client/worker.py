@@ -417,9 +417,8 @@ class Worker:
         with self._lock:
             until = self._extend_due.get(run_id, (0.0, 0.0))[1]
         later: float | None = EXTEND_AFTER * seconds
-        if time.monotonic() >= until:
-            later = None  # held as long as allowed: the lease runs out, the point goes back
-        else:
+        skipped = time.monotonic() >= until
+        if not skipped:
             try:
                 self.client.extend_lease(
                     self.calibration_id,
@@ -433,12 +432,16 @@ class Worker:
             except Exception:  # nothing here may end the thread: other runs' leases need it
                 later = None
         with self._lock:
-            if run_id not in self._extend_due:
+            entry = self._extend_due.get(run_id)
+            if entry is None:
                 return  # it finished meanwhile
-            if later is None:
-                del self._extend_due[run_id]
+            # Read again: the command may have ended meanwhile, lifting the limit (then a
+            # skipped extension is due at once).
+            now = time.monotonic()
+            if later is None or now >= entry[1]:
+                del self._extend_due[run_id]  # refused, or held as long as allowed
             else:
-                self._extend_due[run_id] = (time.monotonic() + later, until)
+                self._extend_due[run_id] = (now + (0.0 if skipped else later), entry[1])
 
     def _register(self, run_id: str, proc: subprocess.Popen[bytes]) -> None:
         with self._lock:

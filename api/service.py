@@ -523,12 +523,13 @@ class CalibrationService:
         hold its point for good). 409 once the lease is over (the run expired and its point
         was re-queued, or its result is in; a late result is still kept)."""
         now = self.clock()
-        known = _RUN_ID.fullmatch(run_id) is not None
-        result = self.store.extend_lease(
-            calibration_id, run_id, now, now + lease_seconds, LONGEST_HOLD
-        )
-        self._count("expired", result.expired)
-        if not known or result.state is None:
+        result = None
+        if _RUN_ID.fullmatch(run_id) is not None:  # ids become store keys: as `report` does
+            result = self.store.extend_lease(
+                calibration_id, run_id, now, now + lease_seconds, LONGEST_HOLD
+            )
+            self._count("expired", result.expired)
+        if result is None or result.state is None:
             self.meta(calibration_id)  # 404 for the calibration first, if it is gone
             raise NotFound(f"run {run_id!r} does not exist in calibration {calibration_id!r}")
         if result.state != "leased":

@@ -45,7 +45,7 @@ async def lease_runs(
 ) -> Response:
     """Lease up to ``count`` points; an empty list comes with Retry-After while work remains."""
     body = await parse_body(request, LeaseRequest)
-    seconds = body.lease_seconds or request.app.state.settings.lease_seconds
+    seconds = _lease_seconds(body.lease_seconds, request)
     outcome = await service.lease(calibration_id, body.count, body.worker, seconds)
     answer = LeaseResponse(runs=outcome.runs, status=outcome.status)  # type: ignore[arg-type]
     retry = None if outcome.retry_after is None else {"Retry-After": str(outcome.retry_after)}
@@ -80,9 +80,14 @@ async def extend_lease(
     """Keep a leased run for ``lease_seconds`` more from now (a run longer than its lease);
     409 once its lease is over."""
     body = await parse_body(request, LeaseExtension)
-    seconds = body.lease_seconds or request.app.state.settings.lease_seconds
+    seconds = _lease_seconds(body.lease_seconds, request)
     answer = await to_thread.run_sync(service.extend_lease, calibration_id, run_id, seconds)
     return json_response(LeaseExtended(**answer))
+
+
+def _lease_seconds(asked: float | None, request: Request) -> float:
+    """The lease length a request asked for, or the server's (``HONING_LEASE_SECONDS``)."""
+    return asked or request.app.state.settings.lease_seconds
 
 
 @router.post(

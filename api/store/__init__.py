@@ -29,9 +29,10 @@ __all__ = [
 ]
 
 
-#: URL prefixes of each backend.
+#: URL prefixes of each backend (a Redis server over TCP, or over a Unix socket).
 _SQLITE = ("sqlite:///",)
-_REDIS = ("redis://", "rediss://", "unix://")
+_REDIS_TCP = ("redis://", "rediss://")
+_REDIS = (*_REDIS_TCP, "unix://")
 
 
 def check_store_url(url: str) -> None:
@@ -40,7 +41,7 @@ def check_store_url(url: str) -> None:
     usage = f"unsupported store URL {url!r}: use sqlite:///path.db or redis://host:port/db"
     if not url.startswith(_SQLITE + _REDIS):
         raise ValueError(usage)
-    if url.startswith(("redis://", "rediss://")):
+    if url.startswith(_REDIS_TCP):
         parts = urlsplit(url)
         try:
             parts.port  # noqa: B018 - raises ValueError for a port that is not a number

@@ -99,21 +99,36 @@ def live_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
     stop()
 
 
-def _run_cli(
-    *args: str, url: str | None = None, token: str | None = None, cwd: Path | None = None
-) -> subprocess.CompletedProcess[str]:
+def _cli_env(url: str | None, token: str | None) -> dict[str, str]:
+    """This environment without HONING_* settings, then the given URL and token."""
     env = {k: v for k, v in os.environ.items() if not k.startswith("HONING_")}
     if url:
         env["HONING_URL"] = url
     if token:
         env["HONING_TOKEN"] = token
+    return env
+
+
+def _run_cli(
+    *args: str, url: str | None = None, token: str | None = None, cwd: Path | None = None
+) -> subprocess.CompletedProcess[str]:
     return subprocess.run(
         [sys.executable, "-m", "honing.client.cli", *args],
         capture_output=True,
         text=True,
-        env=env,
+        env=_cli_env(url, token),
         cwd=cwd,
         timeout=SUBPROCESS_LIMIT,
+    )
+
+
+def _start_cli(*args: str, url: str | None = None, token: str | None = None) -> subprocess.Popen:
+    """``python -m honing.client.cli ARGS`` in the background, stderr piped (for signals)."""
+    return subprocess.Popen(
+        [sys.executable, "-m", "honing.client.cli", *args],
+        env=_cli_env(url, token),
+        stderr=subprocess.PIPE,
+        text=True,
     )
 
 
@@ -130,6 +145,12 @@ def _assert_one_line_error(result: subprocess.CompletedProcess[str], *fragments:
 def cli() -> Callable[..., subprocess.CompletedProcess[str]]:
     """``cli(*args, url=..., token=..., cwd=...)`` runs ``python -m honing.client.cli``."""
     return _run_cli
+
+
+@pytest.fixture
+def cli_process() -> Callable[..., subprocess.Popen]:
+    """``cli_process(*args, url=..., token=...)`` starts the command line in the background."""
+    return _start_cli
 
 
 @pytest.fixture

@@ -1,7 +1,6 @@
 from __future__ import annotations
 
 import json
-import os
 import signal
 import subprocess
 import sys
@@ -336,7 +335,9 @@ def _slow_run_server(fake_server: Any) -> None:
     fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "done", "trust": 1.0})
 
 
-def _start_worker(fake_server: Any, tmp_path: Path, hold: str) -> tuple[subprocess.Popen, Path]:
+def _start_worker(
+    cli_process: Any, fake_server: Any, tmp_path: Path, hold: str
+) -> tuple[subprocess.Popen, Path]:
     started = tmp_path / "started"
     # The command signals that it runs, then waits for the test to release it (or forever).
     code = f"""
@@ -346,24 +347,8 @@ while not pathlib.Path({hold!r}).exists():
     time.sleep(0.05)
 json.dump({{"y": [float(os.environ["HONING_P_a"])]}}, open(os.environ["HONING_OUTPUTS"], "w"))
 """
-    env = {k: v for k, v in os.environ.items() if not k.startswith("HONING_")}
-    env.update(HONING_URL=fake_server.url, HONING_TOKEN="t")
-    proc = subprocess.Popen(
-        [
-            sys.executable,
-            "-m",
-            "honing.client.cli",
-            "worker",
-            "c1",
-            "-q",
-            "--",
-            sys.executable,
-            "-c",
-            code,
-        ],
-        env=env,
-        stderr=subprocess.PIPE,
-        text=True,
+    proc = cli_process(
+        "worker", "c1", "-q", "--", sys.executable, "-c", code, url=fake_server.url, token="t"
     )
     while not started.exists():
         assert proc.poll() is None, proc.stderr.read() if proc.stderr else ""
@@ -371,10 +356,12 @@ json.dump({{"y": [float(os.environ["HONING_P_a"])]}}, open(os.environ["HONING_OU
     return proc, started
 
 
-def test_ctrl_c_finishes_and_reports_the_run_in_hand(fake_server: Any, tmp_path: Path) -> None:
+def test_ctrl_c_finishes_and_reports_the_run_in_hand(
+    fake_server: Any, tmp_path: Path, cli_process: Any
+) -> None:
     _slow_run_server(fake_server)
     release = tmp_path / "release"
-    proc, _ = _start_worker(fake_server, tmp_path, str(release))
+    proc, _ = _start_worker(cli_process, fake_server, tmp_path, str(release))
     proc.send_signal(signal.SIGINT)
     # The worker keeps waiting for its command; let the command finish now.
     while "stopping" not in (line := proc.stderr.readline()):
@@ -387,9 +374,11 @@ def test_ctrl_c_finishes_and_reports_the_run_in_hand(fake_server: Any, tmp_path:
     assert "Traceback" not in err
 
 
-def test_second_ctrl_c_terminates_and_reports_failed(fake_server: Any, tmp_path: Path) -> None:
+def test_second_ctrl_c_terminates_and_reports_failed(
+    fake_server: Any, tmp_path: Path, cli_process: Any
+) -> None:
     _slow_run_server(fake_server)
-    proc, _ = _start_worker(fake_server, tmp_path, str(tmp_path / "never"))
+    proc, _ = _start_worker(cli_process, fake_server, tmp_path, str(tmp_path / "never"))
     proc.send_signal(signal.SIGINT)
     while "stopping" not in (line := proc.stderr.readline()):
         assert line, "worker ended before announcing the stop"
@@ -400,10 +389,10 @@ def test_second_ctrl_c_terminates_and_reports_failed(fake_server: Any, tmp_path:
     assert "interrupted" in report["error"]
 
 
-def test_sigterm_is_handled_like_ctrl_c(fake_server: Any, tmp_path: Path) -> None:
+def test_sigterm_is_handled_like_ctrl_c(fake_server: Any, tmp_path: Path, cli_process: Any) -> None:
     _slow_run_server(fake_server)
     release = tmp_path / "release"
-    proc, _ = _start_worker(fake_server, tmp_path, str(release))
+    proc, _ = _start_worker(cli_process, fake_server, tmp_path, str(release))
     proc.send_signal(signal.SIGTERM)
     while "stopping" not in (line := proc.stderr.readline()):
         assert line, "worker ended before announcing the stop"
@@ -413,17 +402,11 @@ def test_sigterm_is_handled_like_ctrl_c(fake_server: Any, tmp_path: Path) -> Non
     assert fake_server.bodies("PUT", f"{CAL}/runs/r1") == [{"outputs": {"y": [1.5]}}]
 
 
-def test_sigterm_stops_status_wait_with_143(fake_server: Any, tmp_path: Path) -> None:
+def test_sigterm_stops_status_wait_with_143(fake_server: Any, cli_process: Any) -> None:
     # EPILOG: 143 for SIGTERM, for every command (here one waiting on the server, not a worker).
     fake_server.on("GET", CAL, calibration("collecting"))
-    env = {k: v for k, v in os.environ.items() if not k.startswith("HONING_")}
-    env.update(HONING_URL=fake_server.url, HONING_TOKEN="t")
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "honing.client.cli", "status", "c1", "--wait", "--interval", "0.1"],
-        env=env,
-        stderr=subprocess.PIPE,
-        text=True,
-    )
+    argv = ["status", "c1", "--wait", "--interval", "0.1"]
+    proc = cli_process(*argv, url=fake_server.url, token="t")
     deadline = time.monotonic() + 60
     while len(fake_server.bodies("GET", CAL)) < 2:  # it is polling
         assert proc.poll() is None and time.monotonic() < deadline
@@ -466,19 +449,12 @@ def test_serve_passes_its_options_and_a_default_store(
 
 
 def test_serve_stops_gracefully_on_sigterm_with_0(
-    unused_port: Callable[[], int], tmp_path: Path
+    unused_port: Callable[[], int], tmp_path: Path, cli_process: Any
 ) -> None:
     # SIGTERM is how a service is stopped: after the graceful shutdown (refit worker stopped
     # by the server itself, not left to notice its parent is gone) the exit status is 0.
     port = unused_port()
-    env = {k: v for k, v in os.environ.items() if not k.startswith("HONING_")}
-    argv = ["serve", "--port", str(port), "--store", f"sqlite:///{tmp_path}/s.db"]
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "honing.client.cli", *argv],
-        env=env,
-        stderr=subprocess.PIPE,
-        text=True,
-    )
+    proc = cli_process("serve", "--port", str(port), "--store", f"sqlite:///{tmp_path}/s.db")
     try:
         deadline = time.monotonic() + 60
         while True:

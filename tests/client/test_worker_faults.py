@@ -5,8 +5,6 @@ files. Each runs the real command line as a subprocess against a fake server."""
 from __future__ import annotations
 
 import json
-import os
-import subprocess
 import sys
 import threading
 from pathlib import Path
@@ -307,14 +305,20 @@ def reports(fake_server: Any) -> list[Any]:
     return [b for b in fake_server.bodies("PUT", f"{CAL}/runs/r1") if "lease_seconds" not in b]
 
 
-def test_a_run_longer_than_its_lease_has_it_extended(fake_server: Any, cli: Any) -> None:
-    one_run_then(fake_server)
+def extensions_granted(fake_server: Any, report_state: str = "done") -> None:
+    """The server grants r1's lease extensions and takes its report."""
     fake_server.on(
         "PUT",
         f"{CAL}/runs/r1/lease",
         {"run_id": "r1", "state": "leased", "lease_expires_at": "2026-01-01T00:00:01Z"},
     )
-    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "done", "trust": 1.0})
+    trust = 1.0 if report_state == "done" else None
+    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": report_state, "trust": trust})
+
+
+def test_a_run_longer_than_its_lease_has_it_extended(fake_server: Any, cli: Any) -> None:
+    one_run_then(fake_server)
+    extensions_granted(fake_server)
     result = cli(
         "worker", "c1", "-q", "--lease-seconds", "1", "--", *SLOW, url=fake_server.url, token="t"
     )
@@ -363,7 +367,7 @@ def test_an_extension_the_server_cannot_take_now_is_tried_again_soon(
 
 
 def test_the_worker_ends_without_waiting_for_a_hung_extension(
-    fake_server: Any, tmp_path: Path
+    fake_server: Any, cli_process: Any
 ) -> None:
     # The server never answers the extension (until the test lets it): the run finishes, is
     # reported, and the worker exits; the stuck call is left behind.
@@ -376,15 +380,8 @@ def test_the_worker_ends_without_waiting_for_a_hung_extension(
 
     fake_server.on_call("PUT", f"{CAL}/runs/r1/lease", hang)
     fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "done", "trust": 1.0})
-    env = {k: v for k, v in os.environ.items() if not k.startswith("HONING_")}
-    env.update(HONING_URL=fake_server.url, HONING_TOKEN="t")
     argv = ["worker", "c1", "-q", "--lease-seconds", "1", "--", *SLOW]
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "honing.client.cli", *argv],
-        env=env,
-        stderr=subprocess.PIPE,
-        text=True,
-    )
+    proc = cli_process(*argv, url=fake_server.url, token="t")
     try:
         _, err = proc.communicate(timeout=60)  # the hung call would hold it for 120 s
     finally:
@@ -403,12 +400,7 @@ def test_extensions_stop_a_day_after_the_lease_so_a_hung_command_gives_its_point
     # EXTEND_LIMIT (a day; 1.2 s here), then left to run out so its point goes out again.
     monkeypatch.setattr(worker_module, "EXTEND_LIMIT", 1.2)
     one_run_then(fake_server)
-    fake_server.on(
-        "PUT",
-        f"{CAL}/runs/r1/lease",
-        {"run_id": "r1", "state": "leased", "lease_expires_at": "2026-01-01T00:00:01Z"},
-    )
-    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "done", "trust": 1.0})
+    extensions_granted(fake_server)
     slow = [*SLOW[:2], SLOW[2].replace("1.8", "2.6")]
     options = worker_module.WorkerOptions(command=slow, lease_seconds=1.0)
     with Client(fake_server.url, "t") as client:
@@ -457,12 +449,7 @@ def test_a_lease_outlasts_the_stopping_of_a_timed_out_command(fake_server: Any, 
     # period (5 s) later. Its lease is extended all that time, until the failure is reported
     # (stopping at 1.5 s let a 1 s lease run out and the point go to another worker).
     one_run_then(fake_server)
-    fake_server.on(
-        "PUT",
-        f"{CAL}/runs/r1/lease",
-        {"run_id": "r1", "state": "leased", "lease_expires_at": "2026-01-01T00:00:01Z"},
-    )
-    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "failed", "trust": None})
+    extensions_granted(fake_server, report_state="failed")
     stubborn = "import signal, time; signal.signal(signal.SIGTERM, signal.SIG_IGN); time.sleep(60)"
     result = cli(
         "worker", "c1", "-q", "--lease-seconds", "1", "--run-timeout", "1.5", "--",

@@ -22,11 +22,11 @@ Credentials = Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)]
 
 # Dependencies without I/O are async so FastAPI runs them on the event loop, not in a thread.
 async def _store(request: Request) -> Store:
-    return request.app.state.store  # type: ignore[no-any-return]
+    return request.app.state.store
 
 
 async def _service(request: Request) -> CalibrationService:
-    return request.app.state.service  # type: ignore[no-any-return]
+    return request.app.state.service
 
 
 StoreDep = Annotated[Store, Depends(_store)]

@@ -138,7 +138,7 @@ async def _validation_error(request: Request, exc: Exception) -> JSONResponse:
 
 async def _spec_error(request: Request, exc: Exception) -> JSONResponse:
     assert isinstance(exc, SpecError)
-    errors = [{"loc": ["body", *e["loc"]], "msg": e["msg"]} for e in exc.errors]  # type: ignore[misc]
+    errors = [{"loc": ["body", *e["loc"]], "msg": e["msg"]} for e in exc.errors]
     return problem(422, "the request body is not valid", errors)
 
 

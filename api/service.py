@@ -607,7 +607,7 @@ class CalibrationService:
                 flat = spec.flatten_outputs(run.get("outputs"))
             except SpecError as exc:
                 for e in exc.errors:
-                    loc = list(e["loc"])  # type: ignore[call-overload]
+                    loc = list(e["loc"])
                     if loc[:2] != ["runs", i]:
                         loc = ["runs", i, *loc]
                     errors.append((loc, str(e["msg"])))

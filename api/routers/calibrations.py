@@ -25,7 +25,7 @@ def create_calibration(body: SpecRequest, service: ServiceDep) -> CreateResponse
     """
     spec = body.model_dump(exclude_unset=True, exclude_none=True)
     calibration_id, token, state = service.create(spec)
-    return CreateResponse(id=calibration_id, token=token, status=state)  # type: ignore[arg-type]
+    return CreateResponse(id=calibration_id, token=token, status=state)
 
 
 @router.get(

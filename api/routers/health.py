@@ -16,7 +16,7 @@ router = APIRouter(tags=["health"])
 def healthz(store: StoreDep) -> HealthResponse:
     """Ok when the store answers; 503 problem otherwise."""
     store.ping()
-    return HealthResponse(status="ok", store=store.kind)  # type: ignore[arg-type]
+    return HealthResponse(status="ok", store=store.kind)
 
 
 @router.get(

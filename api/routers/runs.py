@@ -47,7 +47,7 @@ async def lease_runs(
     body = await parse_body(request, LeaseRequest)
     seconds = _lease_seconds(body.lease_seconds, request)
     outcome = await service.lease(calibration_id, body.count, body.worker, seconds)
-    answer = LeaseResponse(runs=outcome.runs, status=outcome.status)  # type: ignore[arg-type]
+    answer = LeaseResponse(runs=outcome.runs, status=outcome.status)
     retry = None if outcome.retry_after is None else {"Retry-After": str(outcome.retry_after)}
     return json_response(answer, retry)
 
@@ -64,7 +64,7 @@ async def report_run(
     """Report one run's outputs or its failure; the same result again is a no-op."""
     body = await parse_body(request, ReportRequest)
     outcome = await service.report(calibration_id, run_id, body.outputs, body.error)
-    answer = ReportResponse(run_id=outcome.run_id, state=outcome.state, trust=outcome.trust)  # type: ignore[arg-type]
+    answer = ReportResponse(run_id=outcome.run_id, state=outcome.state, trust=outcome.trust)
     return json_response(answer)
 
 
@@ -117,7 +117,7 @@ def list_runs(
     """Every run with parameters, outputs, state and trust; ``?format=csv`` for CSV."""
     runs = service.runs(calibration_id, state)
     if format == "json":
-        return RunsResponse(runs=runs)  # type: ignore[arg-type]
+        return RunsResponse(runs=runs)
     spec = service.spec(calibration_id)
     outputs = [f"{o.name}[{i}]" for o in spec.observations for i in range(o.size)]
     buffer = io.StringIO()

@@ -847,7 +847,7 @@ class RedisStore:
     def due_refits(self, now: float, limit: int) -> list[str]:
         with self._guard():
             ids = self._r.zrangebyscore(REFIT_DUE, "-inf", now, start=0, num=limit)
-        return [str(_s(i)) for i in ids]
+        return [i.decode() if isinstance(i, bytes) else str(i) for i in ids]
 
     def acquire_refit_lock(self, calibration_id: str, owner: str, ttl: float) -> bool:
         k = CalibrationKeys(calibration_id)

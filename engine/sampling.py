@@ -18,6 +18,7 @@ from scipy import optimize
 __all__ = [
     "ChainResult",
     "Laplace",
+    "find_mode",
     "independence_move",
     "laplace_fit",
     "n_walkers",
@@ -248,14 +249,54 @@ def independence_move(fit: Laplace) -> emcee.moves.MHMove:
     return emcee.moves.MHMove(propose)
 
 
+def find_mode(
+    log_prob: LogProb, start: np.ndarray, scale: np.ndarray, bounded: np.ndarray
+) -> np.ndarray:
+    """Local maximum of a vectorised log density, climbing from `start`.
+
+    L-BFGS-B with central-difference gradients, each taken in one vectorised call; returns
+    `start` itself when the search does not end higher.
+
+    Parameters
+    ----------
+    log_prob : callable
+        Vectorised log density.
+    start : ndarray, shape (dim,)
+        A point with finite log density.
+    scale : ndarray, shape (dim,)
+        Length scale of each coordinate for the finite differences.
+    bounded : ndarray of bool, shape (dim,)
+        Coordinates confined to [-1, 1].
+
+    Returns
+    -------
+    ndarray, shape (dim,)
+    """
+    dim = start.size
+    eye = np.eye(dim)
+    h = GRAD_STEP * scale
+
+    def negative(x: np.ndarray) -> tuple[float, np.ndarray]:
+        pts = np.vstack([x, x + eye * h, x - eye * h])
+        f = -log_prob(pts)
+        if not np.all(np.isfinite(f)):
+            return float(f[0]) if np.isfinite(f[0]) else 1e300, np.zeros(dim)
+        return float(f[0]), (f[1 : dim + 1] - f[dim + 1 :]) / (2 * h)
+
+    limit = 1.0 - 1e-9
+    bounds = [(-limit, limit) if b else (None, None) for b in bounded]
+    result = optimize.minimize(negative, start, jac=True, method="L-BFGS-B", bounds=bounds)
+    return np.asarray(result.x) if result.fun <= negative(start)[0] else start
+
+
 def laplace_fit(
     log_prob: LogProb, start: np.ndarray, scale: np.ndarray, bounded: np.ndarray
 ) -> Laplace | None:
     """Laplace approximation of the target at its mode.
 
-    The mode is found by L-BFGS-B from `start` with vectorised central-difference gradients;
-    the covariance is the inverse of the negative finite-difference Hessian there. Returns
-    None when that is not positive definite (a mode on a bound, a flat direction).
+    The mode is found by `find_mode` from `start`; the covariance is the inverse of the
+    negative finite-difference Hessian there. Returns None when that is not positive definite
+    (a mode on a bound, a flat direction).
 
     Parameters
     ----------
@@ -272,21 +313,7 @@ def laplace_fit(
     -------
     Laplace or None
     """
-    dim = start.size
-    eye = np.eye(dim)
-    h = GRAD_STEP * scale
-
-    def negative(x: np.ndarray) -> tuple[float, np.ndarray]:
-        pts = np.vstack([x, x + eye * h, x - eye * h])
-        f = -log_prob(pts)
-        if not np.all(np.isfinite(f)):
-            return float(f[0]) if np.isfinite(f[0]) else 1e300, np.zeros(dim)
-        return float(f[0]), (f[1 : dim + 1] - f[dim + 1 :]) / (2 * h)
-
-    limit = 1.0 - 1e-9
-    bounds = [(-limit, limit) if b else (None, None) for b in bounded]
-    result = optimize.minimize(negative, start, jac=True, method="L-BFGS-B", bounds=bounds)
-    mode = result.x if result.fun <= negative(start)[0] else start
+    mode = find_mode(log_prob, start, scale, bounded)
     hess = _hessian(log_prob, mode, HESS_STEP * scale)
     if hess is None:
         return None

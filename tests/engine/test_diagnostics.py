@@ -12,6 +12,7 @@ from honing.engine.diagnostics import (
     fit_trust,
     gaussian_kl,
     kl_tolerance,
+    marginal_kl,
     rounds_to_go,
     trust_from_error,
     unmet_conditions,
@@ -38,6 +39,35 @@ def test_gaussian_kl_matches_monte_carlo_with_scipy_densities():
     # Tolerance: 5 Monte Carlo standard errors of the sample mean of the log ratio.
     tol = 5 * ratio.std() / np.sqrt(x.shape[0])
     assert gaussian_kl(m0, s0, m1, s1) == pytest.approx(ratio.mean(), abs=tol)
+
+
+# Reference divergences, each a closed form: between normals as above; between uniforms
+# KL(U[0, 1] || U[-1, 1]) = ln 2; for a posterior 2 B - 1 with B ~ Beta(2, 5) against U[-1, 1],
+# -h(2 B - 1) + ln 2 with h(2 B - 1) = h(B) + ln 2 (scipy.stats.beta(2, 5).entropy()).
+_MARGINALS = [
+    ("hermite", lambda r, n: r.normal(0.3, 0.5, n), np.log(2.0) + (0.25 + 0.09) / 2 - 0.5),
+    ("hermite", lambda r, n: r.normal(0.0, 0.01, n), np.log(100.0) + 1e-4 / 2 - 0.5),
+    ("legendre", lambda r, n: r.uniform(0.0, 1.0, n), np.log(2.0)),
+    ("legendre", lambda r, n: 2 * r.beta(2, 5, n) - 1, -float(stats.beta(2, 5).entropy())),
+]
+
+
+@pytest.mark.parametrize(("family", "draw", "exact"), _MARGINALS)
+def test_marginal_kl_matches_closed_forms(family, draw, exact):
+    # Mean over 20 sets of 20,000 draws (the size of a served pool). Measured over 200 sets,
+    # one set's error has sd 0.004-0.005 and the mean error (the estimator's bias) is within
+    # 0.002 of 0 on smooth densities and +0.006 on the uniform, whose hard edges bias
+    # m-spacings by about m / n = 0.007 (m = sqrt(n)). 0.008 leaves 0.002 (2 standard
+    # errors of a 20-set mean) beyond the largest bias; the former histogram on the central
+    # 99.8% overstated the two normal cases by 0.010 and 0.013 on average.
+    errors = [
+        marginal_kl(draw(np.random.default_rng(s), 20_000), family) - exact for s in range(20)
+    ]
+    assert np.mean(errors) == pytest.approx(0.0, abs=0.008)
+
+
+def test_marginal_kl_is_nan_for_draws_that_do_not_spread():
+    assert np.isnan(marginal_kl(np.full(100, 0.3), "hermite"))
 
 
 def test_gaussian_kl_zero_for_identical():

@@ -291,6 +291,10 @@ class PredictiveBand(_Output):
 class PosteriorResponse(_Output):
     round: int
     runs_completed: int
+    runs_fitted: int = Field(
+        description="Successful runs the posterior was fitted on; runs completed since then "
+        "count in runs_completed and enter the next fit."
+    )
     status: Status
     parameters: dict[str, ParameterSummary | None]
     correlation: list[list[float | None]]

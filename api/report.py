@@ -20,6 +20,7 @@ import base64
 import html
 import io
 import math
+import textwrap
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime
@@ -46,6 +47,13 @@ PAIR_MAX_PARAMETERS = 8
 CHANNEL_MAX_PLOTS = 40
 #: Data points drawn per channel; longer channels are thinned evenly, and the caption says so.
 CHANNEL_MAX_POINTS = 5000
+#: Data points drawn with their ± 1 sd bars up to this many per channel; beyond it, the bars
+#: cover the bands (1000 points hid both).
+ERRORBAR_MAX_POINTS = 150
+#: Characters per line of a marginal panel's title and axis label (a 4.4-inch panel, or one
+#: of two in 7.4 inches, holds about 40 at the label's size) and of a pair plot's labels.
+MARGINAL_LABEL_CHARS = 36
+PAIR_LABEL_CHARS = 18
 #: A posterior narrower than this share of the plotted prior range gets a close-up panel.
 CLOSE_UP_SHARE = 0.2
 #: Resolution of every PNG.
@@ -112,14 +120,18 @@ def render_report(spec: CalibrationSpec, state: EngineState, runs: list[dict[str
     columns = spec.names + ([NOISE_SCALE_NAME] if spec.noise_scale == "estimate" else [])
     draws, pool_note = _usable_pool(state.pool, len(columns))
     fitted = state.round > 0
-    runs_completed = _number(summary.get("runs_completed"))
+    # The summary's count is of the successful runs the latest fit used; the run records
+    # give the count now, which is ahead of it while results arrive between fits.
+    runs_fitted = _number(summary.get("runs_completed"))
+    done = sum(1 for r in runs if isinstance(r, Mapping) and r.get("state") == "done")
     title = html.escape(spec.name)
     meta = " · ".join(
         [
             f"round {state.round}",
             f"status {html.escape(str(state.status))}",
-            f"{_fmt(runs_completed if runs_completed is not None else state.runs_at_fit)} runs"
-            " completed",
+            f"{done} runs completed",
+            f"posterior from {_fmt(runs_fitted if runs_fitted is not None else state.runs_at_fit)}"
+            " runs",
         ]
     )
     body = [
@@ -245,7 +257,7 @@ _DIAGNOSTIC_LABELS = (
     ("surrogate_degree", "Surrogate degree"),
     ("ess_min", "Smallest effective sample size"),
     ("tau_max", "Longest autocorrelation time"),
-    ("failed_fraction", "Share of failed runs"),
+    ("failed_fraction", "Share of failed runs at the latest fit"),
     ("converged", "Converged"),
 )
 
@@ -335,7 +347,7 @@ def _marginal_figure(
     )
     fig = Figure(figsize=(7.4 if close_up else 4.4, 2.7), dpi=DPI, layout="constrained")
     axes = fig.subplots(1, 2) if close_up else [fig.subplots()]
-    xlabel = _tex(f"{name} [{unit}]" if unit else name)
+    xlabel = _label(f"{name} [{unit}]" if unit else name, MARGINAL_LABEL_CHARS)
     for k, ax in enumerate(axes):
         lo, hi = _padded(min(span), max(span), 0.0) if span else (0.0, 1.0)
         if k == 1 and post_range:
@@ -360,7 +372,8 @@ def _marginal_figure(
         ax.set_ylim(bottom=0)
         ax.set_xlabel(xlabel)
         ax.set_yticks([])
-        ax.set_title("close-up of the posterior" if k == 1 else _tex(name), fontsize=10)
+        title = _label(name, MARGINAL_LABEL_CHARS)
+        ax.set_title("close-up of the posterior" if k == 1 else title, fontsize=10)
     axes[0].legend(fontsize=7, loc="upper right", frameon=False)
     return fig
 
@@ -393,7 +406,9 @@ def _pairs_section(columns: list[str], draws: np.ndarray | None, params: Mapping
         rows = np.arange(n)
         notes.append(f"Showing all {n:,} draws.")
     names = [columns[j] for j in chosen]
-    fig = _pairs_figure(names, draws[np.ix_(rows, np.array(chosen))])
+    # Correlations from every draw, as the posterior summary gives them, not the plotted few.
+    corr = _correlation(draws[:, np.array(chosen)])
+    fig = _pairs_figure(names, draws[np.ix_(rows, np.array(chosen))], corr)
     caption = (
         "Below the diagonal: draws of each pair; on it: each parameter's histogram; above it: "
         "the correlation of the draws. " + " ".join(notes)
@@ -405,7 +420,7 @@ def _pairs_section(columns: list[str], draws: np.ndarray | None, params: Mapping
     )
 
 
-def _pairs_figure(names: list[str], sample: np.ndarray) -> Figure:
+def _pairs_figure(names: list[str], sample: np.ndarray, corr: np.ndarray) -> Figure:
     k = len(names)
     size = max(4.5, 1.45 * k)
     fig = Figure(figsize=(size, size), dpi=DPI)
@@ -415,7 +430,6 @@ def _pairs_figure(names: list[str], sample: np.ndarray) -> Figure:
         left=1.5 * margin, bottom=1.5 * margin, right=1 - margin / 2, top=1 - margin / 2
     )
     grid = fig.subplots(k, k, squeeze=False, gridspec_kw={"wspace": 0.08, "hspace": 0.08})
-    corr = _correlation(sample)
     for i in range(k):
         for j in range(k):
             ax: Axes = grid[i, j]
@@ -439,11 +453,11 @@ def _pairs_figure(names: list[str], sample: np.ndarray) -> Figure:
                     transform=ax.transAxes,
                 )
             if i == k - 1:
-                ax.set_xlabel(_tex(names[j]), fontsize=7)
+                ax.set_xlabel(_label(names[j], PAIR_LABEL_CHARS), fontsize=7)
             else:
                 ax.set_xticklabels([])
             if j == 0 and i > 0:
-                ax.set_ylabel(_tex(names[i]), fontsize=7)
+                ax.set_ylabel(_label(names[i], PAIR_LABEL_CHARS), fontsize=7)
             elif i != j:
                 ax.set_yticklabels([])
     return fig
@@ -515,18 +529,25 @@ def _channel_figure(
     (mean,) = _band(predictive, obs.size, "mean")
     if mean is not None:
         ax.plot(xs, mean[order], color=_POSTERIOR, lw=1.4, label="posterior-predictive mean")
-    ax.errorbar(
-        xs,
-        obs.values[order],
-        yerr=obs.sd[order],
-        fmt="o",
-        ms=3,
-        color=_DATA,
-        ecolor=_DATA,
-        elinewidth=0.8,
-        capsize=2,
-        label="data ± 1 sd",
-    )
+    if order.size > ERRORBAR_MAX_POINTS:
+        ax.plot(xs, obs.values[order], ".", ms=2, color=_DATA, label="data")
+        notes.append(
+            f"Data drawn without their ± 1 sd bars above {ERRORBAR_MAX_POINTS} points, where "
+            "the bars would hide the bands."
+        )
+    else:
+        ax.errorbar(
+            xs,
+            obs.values[order],
+            yerr=obs.sd[order],
+            fmt="o",
+            ms=3,
+            color=_DATA,
+            ecolor=_DATA,
+            elinewidth=0.8,
+            capsize=2,
+            label="data ± 1 sd",
+        )
     ax.set_title(_tex(obs.name), fontsize=10)
     ax.set_xlabel("coordinate" if obs.coords is not None else "index")
     ax.legend(fontsize=7, frameon=False)
@@ -585,11 +606,11 @@ def _convergence_section(history: Sequence[Mapping[str, Any]]) -> str:
         xs, ys = zip(*pairs, strict=True)
         ax.plot(xs, ys, "o-", color=_POSTERIOR, ms=4)
         ax.xaxis.set_major_locator(MaxNLocator(integer=True))
-        if log and all(y > 0 for y in ys):
-            ax.set_yscale("log")
-            _plain_log_labels(ax, ys)
         if key == "validation_error":
             ax.axhline(1.0, color="#888888", ls="--", lw=1)
+        if log and all(y > 0 for y in ys):
+            ax.set_yscale("log")
+            _plain_log_labels(ax)
     caption = (
         "Out-of-sample error: RMS of (simulator - surrogate prediction made before the run) / sd "
         "over each round's new runs; the dashed line marks the noise level."
@@ -601,14 +622,18 @@ def _convergence_section(history: Sequence[Mapping[str, Any]]) -> str:
 # Helpers
 
 
-def _plain_log_labels(ax: Axes, values: Sequence[float]) -> None:
+def _plain_log_labels(ax: Axes) -> None:
     """Label a log y axis with plain numbers ("0.05", "2") instead of powers of ten.
 
-    Over less than two decades, ticks sit at 1, 2 and 5 times powers of ten so that at least
-    two of them fall inside the data's range.
+    Ticks follow the axis's own range, reference lines included: over less than two decades
+    they sit at 1, 2 and 5 times powers of ten, so at least two fall inside; over more, at
+    most six powers of ten (a 1e-8 error under the line at 1 once left the axis unlabelled).
     """
-    if math.log10(max(values) / min(values)) < 2.0:
+    low, high = ax.get_ylim()
+    if math.log10(high / low) < 2.0:
         ax.yaxis.set_major_locator(LogLocator(subs=(1.0, 2.0, 5.0)))
+    else:
+        ax.yaxis.set_major_locator(LogLocator(numticks=6))
     ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:g}"))
     ax.yaxis.set_minor_formatter(NullFormatter())
 
@@ -679,6 +704,12 @@ def _fmt(value: float | None) -> str:
 
 def _points(n: int) -> str:
     return f"{n:,} data point lies" if n == 1 else f"{n:,} data points lie"
+
+
+def _label(text: str, width: int) -> str:
+    """A figure label wrapped to lines of at most ``width`` characters (long names overran
+    their panel and the one beside it)."""
+    return _tex(textwrap.fill(text, width))
 
 
 def _tex(text: str) -> str:

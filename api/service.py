@@ -679,6 +679,9 @@ class CalibrationService:
         meta = self.meta(calibration_id)
         state = self.state(meta)
         summary = dict(state.summary)
+        # The engine's count is of the successful runs its latest fit used; the live counts
+        # replace it, and it stays beside them as runs_fitted.
+        summary["runs_fitted"] = summary.get("runs_completed", 0)
         summary["round"] = state.round
         summary["status"] = self.status(meta)
         summary["runs_completed"] = meta.done

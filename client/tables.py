@@ -101,8 +101,17 @@ def diagnostics_line(summary: Mapping[str, Any]) -> str:
     return (
         f"round {format_number(summary.get('round'))}"
         f" | runs completed {format_number(summary.get('runs_completed'))}"
+        f"{_fitted_on(summary)}"
         f" | validation error {format_number(diagnostics.get('validation_error'), 3)}"
         f" | posterior change {format_number(diagnostics.get('posterior_change'), 3)}"
         f" | surrogate terms {format_number(diagnostics.get('surrogate_terms'))}"
         f" | status {summary.get('status') or '-'}"
     )
+
+
+def _fitted_on(summary: Mapping[str, Any]) -> str:
+    """ " (posterior from N)" when the posterior was fitted on fewer runs than have completed."""
+    fitted, completed = summary.get("runs_fitted"), summary.get("runs_completed")
+    if isinstance(fitted, int) and isinstance(completed, int) and fitted != completed:
+        return f" (posterior from {format_number(fitted)})"
+    return ""

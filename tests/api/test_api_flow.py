@@ -148,9 +148,18 @@ def test_import_enough_runs_queues_a_refit(
     )
     assert client.get(calibration.url, headers=calibration.headers).json()["status"] == "fitting"
     assert refitter.step() == ["written"]
-    assert (
-        client.get(f"{calibration.url}/posterior", headers=calibration.headers).json()["round"] == 1
+    posterior = client.get(f"{calibration.url}/posterior", headers=calibration.headers).json()
+    assert posterior["round"] == 1
+    assert posterior["runs_completed"] == posterior["runs_fitted"] == 12
+    # A result that arrives after the fit counts at once; the posterior still rests on 12.
+    one = {"slope": 0.7, "offset": 0.0}
+    client.post(
+        f"{calibration.url}/runs/import",
+        json={"runs": [{"parameters": one, "outputs": simulate(one)}]},
+        headers=calibration.headers,
     )
+    posterior = client.get(f"{calibration.url}/posterior", headers=calibration.headers).json()
+    assert (posterior["runs_completed"], posterior["runs_fitted"]) == (13, 12)
 
 
 def test_delete_removes_everything(client: AppClient, calibration: Calibration) -> None:

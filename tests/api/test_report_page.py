@@ -337,3 +337,79 @@ def test_many_channels_are_capped(monkeypatch: pytest.MonkeyPatch) -> None:
     checker = _parse(render_report(spec, state, []))
     assert _plots(checker).count("channel") == 3
     assert "2 more channels are not drawn: probe_3, probe_4." in "".join(checker.text)
+
+
+def test_header_gives_the_runs_now_and_the_runs_the_posterior_used(fitted_page: str) -> None:
+    # The state's summary was fitted on 72 runs; the run records show 70 done since.
+    text = " ".join("".join(_parse(fitted_page).text).split())
+    assert "70 runs completed" in text and "posterior from 72 runs" in text
+
+
+def test_pair_correlations_come_from_every_draw(monkeypatch: pytest.MonkeyPatch) -> None:
+    # Only 500 of the 4,000 draws are plotted; the printed correlations must still be those
+    # of all draws (numpy.corrcoef), as the posterior summary gives them.
+    monkeypatch.setattr(report, "PAIR_MAX_POINTS", 500)
+    seen: list[np.ndarray] = []
+    draw = report._pairs_figure
+
+    def spy(names: list[str], sample: np.ndarray, corr: np.ndarray) -> Any:
+        seen.append(corr)
+        return draw(names, sample, corr)
+
+    monkeypatch.setattr(report, "_pairs_figure", spy)
+    spec = _spec(noise="fixed")
+    state = _state(spec)
+    render_report(spec, state, [])
+    np.testing.assert_allclose(seen[0], np.corrcoef(state.pool, rowvar=False), atol=1e-12)
+
+
+@pytest.mark.parametrize("values", [[2e-8, 1.5e-9], [1e-14, 3e-13], [0.5, 0.3], [3.0, 0.02]])
+def test_log_axes_are_labelled_whatever_their_range(values: list[float]) -> None:
+    # The error panel draws a reference line at 1; a 1e-8 error under it once left the axis
+    # with no labels at all.
+    fig = report.Figure()
+    ax = fig.subplots()
+    ax.plot(range(len(values)), values)
+    ax.axhline(1.0)
+    ax.set_yscale("log")
+    report._plain_log_labels(ax)
+    report.FigureCanvasAgg(fig).draw()
+    low, high = ax.get_ylim()
+    shown = [t for t in ax.get_yticklabels() if t.get_text() and low <= t.get_position()[1] <= high]
+    assert len(shown) >= 2
+
+
+def _long_spec(points: int) -> CalibrationSpec:
+    return CalibrationSpec.from_dict(
+        {
+            "name": "long",
+            "parameters": [
+                {
+                    "name": "hydraulic_conductivity_of_the_lower_aquifer_layer_in_situ",
+                    "prior": {"kind": "normal", "mean": 2.0, "sd": 2.0},
+                    "unit": "m/s",
+                }
+            ],
+            "observations": [{"name": "head", "values": [0.0] * points, "sd": 0.1}],
+        }
+    )
+
+
+def test_long_names_wrap_inside_their_panel() -> None:
+    spec = _long_spec(5)
+    column = np.random.default_rng(0).normal(2.0, 0.05, 2000)
+    fig = report._marginal_figure(
+        spec.names[0], "m/s", spec.parameters[0], column, "posterior draws"
+    )
+    labels = [ax.get_xlabel() for ax in fig.axes] + [ax.get_title() for ax in fig.axes]
+    assert all(len(line) <= report.MARGINAL_LABEL_CHARS for t in labels for line in t.split("\n"))
+    assert "".join(fig.axes[0].get_xlabel().split("\n")) == f"{spec.names[0]} [m/s]"
+
+
+@pytest.mark.parametrize("points", [20, 1000])
+def test_error_bars_only_where_they_leave_the_bands_visible(points: int) -> None:
+    spec = _long_spec(points)
+    fig, notes = report._channel_figure(spec.observations[0], {}, {})
+    bars = [c for c in fig.axes[0].containers if c.has_yerr]
+    assert len(bars) == (1 if points <= report.ERRORBAR_MAX_POINTS else 0)
+    assert any("without their ± 1 sd bars" in n for n in notes) == (bars == [])

@@ -626,17 +626,19 @@ def fit_shared_sparse(
     root = np.sqrt(weights)
     a = phi * root[:, None]
     c = y * root[:, None]
-    mean = (weights @ y) / weight_total
     score = _scored_rows(scored, positive)
-    if float(np.sum(((y - mean) * root[:, None]) ** 2)) == 0.0:
-        coef = (mean / phi[positive, 0][0])[None, :]
-        zeros = np.zeros(y.shape[1])
-        return SharedFit(np.array([0]), coef, zeros, 0.0, np.zeros_like(y), 1.0)
     spread = _weighted_spread(y, weights, score)
     if float(spread.sum()) == 0.0:  # constant where scored: score every row
         score = positive
         spread = _weighted_spread(y, weights, score)
     spread_total = float(spread.sum())
+    if spread_total == 0.0:
+        # Constant wherever a row counts (outputs that do not depend on the parameters): the
+        # weighted mean is the fit. Tested as the spread is, exactly: a sum of squares about
+        # that mean keeps ~1e-62 of rounding, passed a test against 0 and divided by 0 below.
+        coef = (((weights @ y) / weight_total) / phi[positive, 0][0])[None, :]
+        zeros = np.zeros(y.shape[1])
+        return SharedFit(np.array([0]), coef, zeros, 0.0, np.zeros_like(y), 1.0)
     n_cols = a.shape[1]
     limit = min(n_samples - 3, n_cols - 1)
     col_norm2 = np.einsum("ij,ij->j", a, a)

@@ -314,3 +314,25 @@ def test_prior_check_warns_only_when_prior_cannot_explain_data():
     assert not any("prior check" in w for w in good["diagnostics"]["warnings"])
     assert bad["prior_predictive"]["y"]["uncovered"] >= 9
     assert good["prior_predictive"]["y"]["uncovered"] == 0
+
+
+def test_outputs_that_do_not_depend_on_the_parameters_give_back_the_prior():
+    # A sensor the parameters do not reach: the likelihood is constant, so the posterior is
+    # the prior, N(0, 1) and U(0, 2) (mean 1, sd 2 / sqrt(12)). The first refit used to
+    # divide by zero: the whitened outputs were constant to the last bit, but a sum of
+    # squares about their weighted mean kept 3e-62 of rounding. Tolerances as in test_rounds.
+    spec = _spec(
+        [
+            {"name": "p0", "prior": {"kind": "normal", "mean": 0.0, "sd": 1.0}},
+            {"name": "p1", "prior": {"kind": "uniform", "low": 0.0, "high": 2.0}},
+        ],
+        [{"name": "y", "values": [1.1, 1.9], "sd": 0.1}],
+        design={"batch_size": 4},
+        seed=0,
+    )
+    loop = CalibrationLoop(spec)
+    loop.run(lambda p: {"y": [1.0, 2.0]})
+    pool = loop.state.pool
+    sd = np.array([1.0, 2.0 / np.sqrt(12.0)])
+    np.testing.assert_array_less(np.abs(pool.mean(0) - [0.0, 1.0]) / sd, MEAN_TOL_SD)
+    np.testing.assert_allclose(pool.std(0), sd, rtol=SD_REL_TOL)

@@ -566,6 +566,10 @@ class CalibrationService:
             if record is None and known:
                 record = await to_thread.run_sync(self.store.get_run, calibration_id, run_id)
             if record is None:
+                if await self.store.get_meta_async(calibration_id) is None:
+                    # Gone while the result was on its way (deleted, or the store lost it):
+                    # say so, rather than that the run does not exist.
+                    raise NotFound(f"calibration {calibration_id!r} does not exist")
                 raise NotFound(f"run {run_id!r} does not exist in calibration {calibration_id!r}")
             if record.state in ("done", "failed"):
                 outcome = _settled(record, new_state, normalised, error)

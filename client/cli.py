@@ -419,14 +419,22 @@ def _refitter(args: argparse.Namespace) -> int:
 
 
 def _check_server_settings(store: str, admin_key_file: str | None) -> None:
-    """One-line errors (exit 1) for a store URL or key file the server cannot use, before
-    it starts: once it runs, such a mistake ends it with a traceback in its log."""
-    from honing.api.store import check_store_url
+    """One-line errors (exit 1) for a store URL, SQLite file or key file the server cannot
+    use, before it starts: once it runs, such a mistake ends it with a traceback in its log.
+    A SQLite file is opened, which writes to it once (a Redis server may come up later)."""
+    import sqlite3
+
+    from honing.api.store import StoreUnavailable, check_store_url, open_store
 
     try:
         check_store_url(store)
     except ValueError as exc:
         raise SettingsError(str(exc)) from None
+    if store.startswith("sqlite:"):
+        try:
+            open_store(store).close()
+        except (StoreUnavailable, OSError, sqlite3.Error) as exc:
+            raise SettingsError(f"cannot use the store {store}: {exc}") from None
     if admin_key_file:
         _read_secret(admin_key_file)
 

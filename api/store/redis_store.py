@@ -153,8 +153,10 @@ return out
 # KEYS: 1 meta, 2 requeue, 3 leases, 4 finished, 5 the run's hash, 6 proposals, 7 refit lock
 # ARGV: 1 run key prefix, 2 now, 3 run id, 4 expected epoch, 5 new state ("done"/"failed"),
 #       6 result JSON, 7 completion time, 8... the metadata fields to return
-# Expires overdue leases, then writes the result only if the run's epoch is still the one the
-# caller read (fencing: a run that expired or finished meanwhile has a new epoch).
+# Writes the result only if the run's epoch is still the one the caller read (fencing: a run
+# that expired or finished meanwhile has a new epoch), and expires the other overdue leases.
+# A lease that ran out but was not yet expired is finished like any other (no one else has
+# its point); an expired run's re-queued point is withdrawn while no one has leased it again.
 # Returns {1, expired, snapshot} written (snapshot: the metadata after the write, as _META
 # returns it), {0, expired} not written (stale epoch or no such run), -1 no calibration.
 _FINISH = (
@@ -164,15 +166,18 @@ _FINISH = (
     + """
 local meta = KEYS[1]
 if redis.call('EXISTS', meta) == 0 then return -1 end
-local expired = expire_overdue(meta, KEYS[3], KEYS[2], ARGV[1], ARGV[2])
 local rk = KEYS[5]
 local state = redis.call('HGET', rk, 'state')
-if not state then return {0, expired} end
-if redis.call('HGET', rk, 'epoch') ~= ARGV[4] then return {0, expired} end
-if state == 'done' or state == 'failed' then return {0, expired} end
-if state == 'leased' then
+local current = state and redis.call('HGET', rk, 'epoch') == ARGV[4]
+                and state ~= 'done' and state ~= 'failed'
+if current and state == 'leased' then
   redis.call('ZREM', KEYS[3], ARGV[3])
   redis.call('HINCRBY', meta, 'leased', -1)
+end
+local expired = expire_overdue(meta, KEYS[3], KEYS[2], ARGV[1], ARGV[2])
+if not current then return {0, expired} end
+if state == 'expired' then
+  redis.call('LREM', KEYS[2], 1, redis.call('HGET', rk, 'point'))
 end
 redis.call('HSET', rk, 'state', ARGV[5], 'result', ARGV[6], 'completed_at', ARGV[7])
 redis.call('HINCRBY', rk, 'epoch', 1)

@@ -114,6 +114,37 @@ def _record(row: sqlite3.Row) -> RunRecord:
     return RunRecord.from_fields(fields)
 
 
+#: Primary SQLite result codes that say the file cannot be written now (a full disk, a
+#: read-only file, an I/O error, a lock held too long): the store is unavailable (503), not
+#: broken (500).
+_UNAVAILABLE_CODES = frozenset(
+    {
+        sqlite3.SQLITE_FULL,
+        sqlite3.SQLITE_READONLY,
+        sqlite3.SQLITE_IOERR,
+        sqlite3.SQLITE_BUSY,
+        sqlite3.SQLITE_LOCKED,
+        sqlite3.SQLITE_CANTOPEN,
+    }
+)
+
+
+_BUSY_CODES = frozenset({sqlite3.SQLITE_BUSY, sqlite3.SQLITE_LOCKED})
+
+
+def _unavailable(exc: sqlite3.OperationalError) -> bool:
+    """Whether an error says the file cannot be written now (extended codes included)."""
+    code = getattr(exc, "sqlite_errorcode", None)
+    return code is not None and code & 0xFF in _UNAVAILABLE_CODES
+
+
+def _rollback(db: sqlite3.Connection) -> None:
+    """Roll back what is still open: after a failed COMMIT (a full disk, say) SQLite has
+    already rolled back, and a second ROLLBACK would raise over the error that matters."""
+    if db.in_transaction:
+        db.execute("ROLLBACK")
+
+
 class SqliteStore:
     """`Store` on one SQLite file."""
 
@@ -130,6 +161,7 @@ class SqliteStore:
         self._writer = threading.RLock()
         self._conn().executescript(_SCHEMA)
         self._add_missing_columns()
+        self._check_writable()
 
     def _add_missing_columns(self) -> None:
         """Columns added since a file was created: a budget raised after creation."""
@@ -137,6 +169,14 @@ class SqliteStore:
             columns = {row[1] for row in db.execute("PRAGMA table_info(calibrations)")}
             if "max_runs" not in columns:
                 db.execute("ALTER TABLE calibrations ADD COLUMN max_runs INTEGER")
+
+    def _check_writable(self) -> None:
+        """One real write at start-up: a file this process cannot write (read-only, on a full
+        disk) is then one clear error, not a server that answers healthy and fails every
+        write."""
+        with self._write() as db:
+            (version,) = db.execute("PRAGMA user_version").fetchone()
+            db.execute(f"PRAGMA user_version = {int(version)}")
 
     def _conn(self) -> sqlite3.Connection:
         conn = getattr(self._local, "conn", None)
@@ -173,16 +213,24 @@ class SqliteStore:
             try:
                 db.execute("BEGIN IMMEDIATE")
             except sqlite3.OperationalError as exc:
-                raise StoreUnavailable(f"sqlite busy: {exc}") from exc
+                busy = getattr(exc, "sqlite_errorcode", 0) & 0xFF in _BUSY_CODES
+                raise StoreUnavailable(
+                    f"sqlite {'busy' if busy else 'cannot write'}: {exc}"
+                ) from exc
             try:
                 yield db
+            except sqlite3.OperationalError as exc:
+                _rollback(db)
+                if _unavailable(exc):
+                    raise StoreUnavailable(f"sqlite write failed: {exc}") from exc
+                raise
             except BaseException:
-                db.execute("ROLLBACK")
+                _rollback(db)
                 raise
             try:
                 db.execute("COMMIT")
             except sqlite3.OperationalError as exc:
-                db.execute("ROLLBACK")
+                _rollback(db)
                 raise StoreUnavailable(f"sqlite commit failed: {exc}") from exc
         finally:
             db.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
@@ -349,13 +397,16 @@ class SqliteStore:
     # runs
 
     @staticmethod
-    def _expire_overdue(db: sqlite3.Connection, calibration_id: str, now: float) -> int:
-        # Inside the caller's write transaction: leased runs past expiry become "expired"
-        # (epoch + 1) and their points go to the back of the requeue part of the queue.
+    def _expire_overdue(
+        db: sqlite3.Connection, calibration_id: str, now: float, keep: str | None = None
+    ) -> int:
+        # Inside the caller's write transaction: leased runs past expiry, but `keep`, become
+        # "expired" (epoch + 1) and their points go to the back of the requeue part of the
+        # queue.
         rows = db.execute(
             "SELECT run_id, point FROM runs WHERE calibration_id = ? AND state = 'leased' "
-            "AND lease_expires_at <= ? ORDER BY lease_expires_at, seq",
-            (calibration_id, now),
+            "AND lease_expires_at <= ? AND run_id IS NOT ? ORDER BY lease_expires_at, seq",
+            (calibration_id, now, keep),
         ).fetchall()
         for run_id, point in rows:
             db.execute(
@@ -497,13 +548,23 @@ class SqliteStore:
         with self._write() as db:
             if not _exists(db, calibration_id):
                 return FinishResult(None, 0)
-            expired = self._expire_overdue(db, calibration_id, now)
             row = db.execute(
-                "SELECT state, epoch FROM runs WHERE calibration_id = ? AND run_id = ?",
+                "SELECT state, epoch, point FROM runs WHERE calibration_id = ? AND run_id = ?",
                 (calibration_id, run_id),
             ).fetchone()
-            if row is None or row[1] != epoch or row[0] in ("done", "failed"):
+            current = row is not None and row[1] == epoch and row[0] not in ("done", "failed")
+            # A result for a lease that ran out but was not yet expired is written, and its
+            # point stays put: no one else has it.
+            expired = self._expire_overdue(db, calibration_id, now, run_id if current else None)
+            if not current:
                 return FinishResult(None, expired)
+            if row[0] == "expired":
+                # Its point was re-queued; while no one has leased it again, withdraw it.
+                db.execute(
+                    "DELETE FROM queue WHERE pos = (SELECT pos FROM queue WHERE "
+                    "calibration_id = ? AND kind = 0 AND point = ? ORDER BY pos LIMIT 1)",
+                    (calibration_id, row[2]),
+                )
             (order,) = db.execute(
                 "SELECT COALESCE(MAX(finish_order), 0) + 1 FROM runs WHERE calibration_id = ?",
                 (calibration_id,),

@@ -50,9 +50,12 @@ def test_report_after_expiry_without_a_new_lease_is_accepted(
     (run,) = lease(client, calibration, lease_seconds=5)
     clock.now += 6
     assert report(client, calibration, run)["state"] == "done"
-    # The point was re-queued when the lease expired; it is still handed out again.
-    (again,) = lease(client, calibration)
-    assert again["parameters"] == run["parameters"]
+    # No one else had the point: its result is in, so it is not handed out again (that
+    # would spend a run of the budget on a point already evaluated).
+    (after,) = lease(client, calibration)
+    assert after["parameters"] != run["parameters"]
+    info = client.get(calibration.url, headers=calibration.headers).json()
+    assert (info["runs_completed"], info["runs_leased"]) == (1, 1)
 
 
 def test_empty_lease_says_when_to_come_back(client: AppClient, calibration: Calibration) -> None:
@@ -405,3 +408,19 @@ def test_a_body_with_a_byte_order_mark_is_read(client: AppClient) -> None:
     answer = client.post(f"{cal.url}/runs", content=body, headers=headers)
     assert answer.status_code == 200, answer.text
     assert len(answer.json()["runs"]) == 1
+
+
+def test_a_result_for_a_calibration_the_store_lost_says_the_calibration_is_gone(
+    client: AppClient, calibration: Calibration
+) -> None:
+    # The store loses the calibration behind the service's back (deleted through another
+    # replica, a Redis server restarted without persistence); the token is still cached.
+    (run,) = lease(client, calibration)
+    client.app.state.store.delete(calibration.id)  # type: ignore[attr-defined]
+    response = client.put(
+        f"{calibration.url}/runs/{run['run_id']}",
+        json={"outputs": simulate(run["parameters"])},
+        headers=calibration.headers,
+    )
+    assert response.status_code == 404
+    assert response.json()["detail"] == f"calibration {calibration.id!r} does not exist"

@@ -1,5 +1,7 @@
 import json
+import os
 import sqlite3
+import subprocess
 import threading
 import time
 from dataclasses import dataclass
@@ -154,14 +156,31 @@ def test_expired_lease_is_requeued_first_and_late_result_kept(store: Store, step
 def test_expire_runs_lazily_on_report(store: Store, steps: Steps) -> None:
     make(store, proposals=3)
     a, b = steps.lease("c1", 2, "w", 0.0, 10.0, 100).runs
-    # The report step itself expires both overdue leases, so the epoch it was given is stale;
-    # it says how many it expired, for the service's run counter.
-    stale = steps.finish("c1", a.run_id, a.epoch, "done", done(1.0), 20.0)
-    assert stale.meta is None and stale.expired == 2
-    assert [store.get_run("c1", r.run_id).state for r in (a, b)] == ["expired", "expired"]  # type: ignore[union-attr]
-    meta = store.get_meta("c1")
-    assert meta is not None and (meta.queued, meta.leased) == (3, 0)
+    # The report step expires the other overdue lease and says so, for the service's run
+    # counter; the run it reports is written, as its lease ran out unseen: no one else has
+    # its point, which is not handed out again.
+    written = steps.finish("c1", a.run_id, a.epoch, "done", done(1.0), 20.0)
+    assert written.meta is not None and written.expired == 1
+    assert [store.get_run("c1", r.run_id).state for r in (a, b)] == ["done", "expired"]  # type: ignore[union-attr]
+    assert (written.meta.done, written.meta.queued, written.meta.leased) == (1, 2, 0)
     assert store.expire("c1", 30.0) == 0
+    points = [r.point for r in steps.lease("c1", 5, "w", 30.0, 10.0, 100).runs]
+    assert points == [b.point, json.loads(point(2))]
+
+
+def test_a_late_result_withdraws_its_requeued_point(store: Store, steps: Steps) -> None:
+    make(store, proposals=3)
+    (old,) = steps.lease("c1", 1, "w", 0.0, 10.0, 100).runs
+    assert store.expire("c1", 20.0) == 1
+    expired = store.get_run("c1", old.run_id)
+    assert expired is not None and expired.state == "expired"
+    # Its point waits in the re-queue; the result, arriving before anyone leased it again,
+    # makes that copy unnecessary, so each point is run once and the budget holds.
+    written = steps.finish("c1", old.run_id, expired.epoch, "done", done(1.0), 21.0)
+    assert written.meta is not None
+    assert (written.meta.done, written.meta.queued, written.meta.leased) == (1, 2, 0)
+    points = [r.point for r in steps.lease("c1", 5, "w", 22.0, 10.0, 100).runs]
+    assert points == [json.loads(point(1)), json.loads(point(2))]
 
 
 def test_import_adds_done_runs_in_one_step(store: Store) -> None:
@@ -433,3 +452,43 @@ def test_queued_sqlite_writers_give_up_within_one_busy_timeout(
     # Queued one after another, the last would wait six timeouts (2.4 s); one timeout plus
     # thread scheduling on a loaded machine stays far below 1.2 s.
     assert len(waited) == 6 and max(waited) < 1.2, waited
+
+
+def test_a_full_sqlite_file_is_unavailable_and_nothing_is_written(sqlite_url: str) -> None:
+    # SQLite's max_page_count caps the file as a full disk would: writes that need a new page
+    # fail with SQLITE_FULL ("database or disk is full", sqlite.org/pragma.html). The store
+    # must answer unavailable (503), keep the rolled-back state, and write once there is room.
+    store = open_store(sqlite_url)
+    make(store)
+    db = store._conn()  # type: ignore[attr-defined]
+    pages = db.execute("PRAGMA page_count").fetchone()[0]
+    db.execute(f"PRAGMA max_page_count = {pages}")
+    big = [(point(i), json.dumps({"outputs": {"y": [0.0] * 5000}})) for i in range(20)]
+    with pytest.raises(StoreUnavailable, match="database or disk is full"):
+        store.import_runs("c1", big, 5.0)
+    meta = store.get_meta("c1")
+    assert meta is not None and meta.done == 0 and store.list_runs("c1") == []
+    db.execute(f"PRAGMA max_page_count = {2**30}")
+    assert len(store.import_runs("c1", big, 6.0)) == 20
+    store.close()
+
+
+def test_an_sqlite_file_that_cannot_be_written_fails_at_open(tmp_path: Any) -> None:
+    # A file this process cannot write: immutable for root (chattr +i; root ignores modes),
+    # mode 0444 for anyone else. SQLite then opens it read-only and BEGIN IMMEDIATE still
+    # succeeds; before, the store opened, the server answered healthy, and every write was a
+    # 500 ("attempt to write a readonly database").
+    path = tmp_path / "locked.db"
+    url = f"sqlite:///{path}"
+    open_store(url).close()
+    root = os.geteuid() == 0
+    if root:
+        subprocess.run(["chattr", "+i", str(path)], check=True)
+    else:
+        path.chmod(0o444)
+    try:
+        with pytest.raises(StoreUnavailable, match="readonly database"):
+            open_store(url)
+    finally:
+        if root:
+            subprocess.run(["chattr", "-i", str(path)], check=True)

@@ -2,6 +2,7 @@ from __future__ import annotations
 
 import json
 import signal
+import socket
 import subprocess
 import sys
 import time
@@ -508,14 +509,25 @@ def test_a_key_file_that_is_not_text_is_one_line(
     one_line_error(result, "not UTF-8")
 
 
-def test_a_server_that_fails_to_start_exits_1(
-    cli: Any, tmp_path: Path, unused_port: Callable[[], int]
+def test_a_store_file_that_cannot_be_made_is_one_line(
+    cli: Any, one_line_error: Any, tmp_path: Path
 ) -> None:
-    # A store file that cannot be made: the app's start-up fails inside the server.
+    # Opened before the server starts; before, the app's start-up failed inside uvicorn.
     blocker = tmp_path / "file"
     blocker.write_text("")
-    port = str(unused_port())
-    result = cli("serve", "--port", port, "--store", f"sqlite:///{blocker}/sub/x.db")
+    result = cli("serve", "--store", f"sqlite:///{blocker}/sub/x.db")
+    assert result.returncode == 1
+    one_line_error(result, "cannot use the store")
+
+
+def test_a_server_that_fails_to_start_exits_1(cli: Any, tmp_path: Path) -> None:
+    # A port another process listens on: uvicorn cannot bind, and stops with its own status,
+    # which must not leak out as one of honing's (3 reads as "budget exhausted").
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        port = str(taken.getsockname()[1])
+        result = cli("serve", "--port", port, "--store", f"sqlite:///{tmp_path}/x.db")
     assert result.returncode == 1
     assert (
         result.stderr.splitlines()[-1]

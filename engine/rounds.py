@@ -51,9 +51,9 @@ from honing.engine.priors import reference_logpdf
 from honing.engine.sampling import (
     MAX_STEPS,
     ChainResult,
-    Laplace,
+    Modes,
     find_mode,
-    laplace_fit,
+    find_modes,
     n_walkers,
     sample_posterior,
 )
@@ -131,6 +131,8 @@ PREDICTIVE_DRAWS = 400
 #: a quarter outside is well past all of that, while a prior that cannot explain the data
 #: typically leaves most points outside.
 PRIOR_MISS_SHARE = 0.25
+#: Share of the draws a mode must hold to be named in the warning about separated modes.
+MODE_SHARE_WARNED = 0.01
 #: Fewest successful runs a fit needs: the sparse regression's leave-one-out errors need
 #: three samples of positive weight (`honing.engine.regression.fit_shared_sparse`).
 MIN_FIT_RUNS = 3
@@ -393,10 +395,10 @@ def refit(
     failures = FailureModel.fit(xi_all, runs.failed, surrogate.frame.center, surrogate.frame.scale)
     log_post = _log_posterior(spec, surrogate, families, model_error, failures)
 
-    initial, laplace = _initial_walkers(spec, state, xi_all[kept], surrogate.frame, log_post, rng)
+    initial, modes = _initial_walkers(spec, state, xi_all[kept], surrogate.frame, log_post, rng)
     validated = validation is not None and validation < VALIDATION_TOLERANCE
     cap = MAX_STEPS if validated else STEERING_STEPS
-    chain = sample_posterior(log_post, initial, rng, proposal=laplace, max_steps=cap)
+    chain = sample_posterior(log_post, initial, rng, proposal=modes, max_steps=cap)
     mean, cov = chain.draws.mean(axis=0), _cov(chain.draws)
     change = None
     if "post_mean" in state.arrays:
@@ -420,7 +422,7 @@ def refit(
     elif runs.n_runs >= spec.max_runs:
         status = "budget_exhausted"
     if status != "collecting":
-        chain = _final_chain(log_post, chain.draws, rng, laplace)
+        chain = _final_chain(log_post, chain.draws, rng, modes)
         mean, cov = chain.draws.mean(axis=0), _cov(chain.draws)
 
     pool_xi = chain.draws
@@ -451,6 +453,7 @@ def refit(
         "warnings": list(chain.warnings),
     }
 
+    diagnostics["warnings"].extend(_mode_warnings(modes, pool_xi))
     prior_predictive = state.summary.get("prior_predictive")
     if prior_predictive is None:
         prior_predictive = _prior_predictive(spec, runs)
@@ -614,13 +617,14 @@ def _initial_walkers(
     frame: Frame,
     log_post: Any,
     rng: np.random.Generator,
-) -> tuple[np.ndarray, Laplace | None]:
-    """Starting walkers, and the Laplace fit when there is one.
+) -> tuple[np.ndarray, Modes | None]:
+    """Starting walkers, and the Laplace fits at the modes when there are.
 
-    A Laplace ball at the mode, searched from the best of the previous pool and the retained
-    runs; failing that, those candidates resampled with tempered
-    weights ``exp((lp - max) / T)``, T raised until the weights' effective size is at least
-    three walkers' worth, which keeps the ensemble spread out."""
+    Laplace balls at the modes (`find_modes`), searched from the best of the previous pool
+    and the retained runs, walkers shared by the modes' weights; failing that, those
+    candidates resampled with tempered weights ``exp((lp - max) / T)``, T raised until the
+    weights' effective size is at least three walkers' worth, which keeps the ensemble
+    spread out."""
     walkers = n_walkers(spec.dim)
     previous = _to_reference(spec, state.pool[:, : spec.dim])
     take = min(previous.shape[0], 4000)
@@ -629,16 +633,16 @@ def _initial_walkers(
     finite = np.isfinite(lp)
     candidates, lp = candidates[finite], lp[finite]
     bounded = np.array([p.prior.family == "legendre" for p in spec.parameters])
-    laplace = None
+    modes = None
     if candidates.shape[0]:
-        laplace = laplace_fit(log_post, candidates[np.argmax(lp)], frame.scale, bounded)
-    if laplace is not None:
+        modes = find_modes(log_post, candidates, lp, frame.scale, bounded)
+    if modes is not None:
         ball = np.empty((0, spec.dim))
         for _ in range(50):
-            x = laplace.draw(rng, 2 * walkers)
+            x = modes.draw(rng, 2 * walkers)
             ball = np.vstack([ball, x[np.isfinite(log_post(x))]])
             if ball.shape[0] >= walkers:
-                return ball[:walkers], laplace
+                return ball[:walkers], modes
     if candidates.shape[0] < walkers:
         raise ValueError(
             f"only {candidates.shape[0]} starting points have a finite posterior; "
@@ -659,14 +663,14 @@ def _initial_walkers(
 
 
 def _final_chain(
-    log_post: Any, draws: np.ndarray, rng: np.random.Generator, laplace: Laplace | None
+    log_post: Any, draws: np.ndarray, rng: np.random.Generator, modes: Modes | None
 ) -> ChainResult:
     """The posterior the calibration serves once it stops: a chain run to `FINAL_ESS`,
     started from the round's own draws, which are already in the posterior's bulk."""
     walkers = n_walkers(draws.shape[1])
     initial = draws[rng.choice(draws.shape[0], walkers, replace=False)]
     return sample_posterior(
-        log_post, initial, rng, proposal=laplace, min_ess=FINAL_ESS, max_pool=FINAL_POOL
+        log_post, initial, rng, proposal=modes, min_ess=FINAL_ESS, max_pool=FINAL_POOL
     )
 
 
@@ -805,6 +809,23 @@ def _prior_predictive(spec: CalibrationSpec, runs: RunTable) -> dict[str, Any]:
         out[obs.name] = {"lo95": lo[cols], "hi95": hi[cols], "uncovered": int(outside.sum())}
         begin += obs.size
     return out
+
+
+def _mode_warnings(modes: Modes | None, pool_xi: np.ndarray) -> list[str]:
+    """A warning when the draws fall into separated modes, each holding at least
+    `MODE_SHARE_WARNED` of them: a mean and sd then describe none of the modes."""
+    if modes is None or len(modes.fits) < 2:
+        return []
+    shares = np.bincount(modes.nearest(pool_xi), minlength=len(modes.fits)) / pool_xi.shape[0]
+    held = sorted((float(s) for s in shares if s >= MODE_SHARE_WARNED), reverse=True)
+    if len(held) < 2:
+        return []
+    parts = ", ".join(f"{s:.0%}" for s in held)
+    return [
+        f"the posterior has {len(held)} separated modes, holding {parts} of the draws: means, "
+        "sds and intervals describe them together; read the marginal and pair plots, and the "
+        "posterior samples, to see each"
+    ]
 
 
 def _prior_warnings(spec: CalibrationSpec, prior_predictive: dict[str, Any]) -> list[str]:

@@ -13,12 +13,14 @@ from dataclasses import dataclass, field
 
 import emcee
 import numpy as np
-from scipy import optimize
+from scipy import optimize, special, stats
 
 __all__ = [
     "ChainResult",
     "Laplace",
+    "Modes",
     "find_mode",
+    "find_modes",
     "independence_move",
     "laplace_fit",
     "n_walkers",
@@ -100,7 +102,7 @@ def sample_posterior(
     log_prob: LogProb,
     initial: np.ndarray,
     rng: np.random.Generator,
-    proposal: Laplace | None = None,
+    proposal: Modes | Laplace | None = None,
     min_ess: int = MIN_ESS,
     max_steps: int = MAX_STEPS,
     max_pool: int = MAX_POOL,
@@ -115,10 +117,12 @@ def sample_posterior(
         Starting walkers, each with finite log density.
     rng : numpy.random.Generator
         Seeds emcee's own generator, so a run is reproducible.
-    proposal : Laplace, optional
-        A Gaussian approximation of the target; when given, half of the moves are independence
-        proposals from a multivariate t around it, which on a near-Gaussian posterior cut the
-        autocorrelation time to a few steps.
+    proposal : Modes or Laplace, optional
+        Gaussian approximations of the target at its modes (one mode: a Laplace fit); when
+        given, half of the moves are independence proposals from multivariate t's around
+        them, which on a near-Gaussian posterior cut the autocorrelation time to a few steps
+        and let walkers move between separated modes, which differential-evolution moves
+        alone rarely cross.
     min_ess : int
     max_steps : int
     max_pool : int
@@ -146,6 +150,8 @@ def sample_posterior(
     # steps), so it does not leave the target invariant; tests/engine/test_sampling.py checks
     # the moves kept here against exact Gaussian moments.
     moves: list[tuple[emcee.moves.Move, float]] = [(emcee.moves.DEMove(), 1.0)]
+    if isinstance(proposal, Laplace):
+        proposal = Modes([proposal], np.ones(1))
     if proposal is not None:
         moves = [(independence_move(proposal), 0.5), (emcee.moves.DEMove(), 0.5)]
     sampler = emcee.EnsembleSampler(walkers, dim, log_prob, moves=moves, vectorize=True)
@@ -223,6 +229,111 @@ class Laplace:
         return self.mode + rng.standard_normal((n, self.mode.size)) @ self.chol.T
 
 
+@dataclass
+class Modes:
+    """Laplace fits at separated modes of one target, weighted by their Laplace evidence
+    ``exp(log p(mode)) sqrt(det cov)``; the first is the one climbed to from the best point."""
+
+    fits: list[Laplace]
+    weights: np.ndarray
+
+    def draw(self, rng: np.random.Generator, n: int) -> np.ndarray:
+        """``n`` draws from the Gaussian mixture (from the one Gaussian, for one mode)."""
+        if len(self.fits) == 1:
+            return self.fits[0].draw(rng, n)
+        counts = rng.multinomial(n, self.weights)
+        draws = np.vstack([f.draw(rng, c) for f, c in zip(self.fits, counts, strict=True)])
+        return draws[rng.permutation(n)]
+
+    def nearest(self, x: np.ndarray) -> np.ndarray:
+        """Index of the mode each point is nearest to, in that mode's Mahalanobis metric."""
+        return np.argmin(self._distance2(x), axis=0)
+
+    def nearest_distance2(self, x: np.ndarray) -> np.ndarray:
+        """Squared Mahalanobis distance of each point to its nearest mode."""
+        return np.min(self._distance2(x), axis=0)
+
+    def _distance2(self, x: np.ndarray) -> np.ndarray:
+        return np.array(
+            [np.sum(np.linalg.solve(f.chol, (x - f.mode).T) ** 2, axis=0) for f in self.fits]
+        )
+
+
+#: Most local searches for further modes after the first, each from the best candidate that
+#: no mode found so far explains.
+EXTRA_MODE_STARTS = 4
+#: A candidate is explained by a mode when it lies within this many of that mode's 99% radii
+#: (Mahalanobis, Laplace covariance): a draw of the same basin lies inside one radius, apart
+#: from the tails of a skewed or curved basin.
+MODE_RADII = 2.0
+#: Candidates more than this many nats below the first mode are not searched from: a mode
+#: whose climb starts there would be found only if it rose that much above its own tail.
+MODE_WINDOW = 50.0
+#: Modes whose Laplace evidence is below this share of the total are dropped.
+MIN_MODE_WEIGHT = 1e-3
+
+
+def find_modes(
+    log_prob: LogProb,
+    candidates: np.ndarray,
+    log_probs: np.ndarray,
+    scale: np.ndarray,
+    bounded: np.ndarray,
+) -> Modes | None:
+    """Laplace fits at the separated modes a set of candidate points climbs to.
+
+    The first search starts from the best candidate, as for one mode; each further search
+    starts from the best candidate within `MODE_WINDOW` nats of the first mode that lies
+    beyond `MODE_RADII` 99% radii of every mode found so far, and a mode it reaches counts
+    if it too lies beyond them. One sampler started in one basin, with moves local to it,
+    would otherwise never see a second mode however many runs the design put there.
+
+    Parameters
+    ----------
+    log_prob : callable
+        Vectorised log density.
+    candidates : ndarray, shape (n, dim)
+        Points with finite log density (earlier draws, runs).
+    log_probs : ndarray, shape (n,)
+        Their log densities.
+    scale : ndarray, shape (dim,)
+        Length scale of each coordinate for the finite differences.
+    bounded : ndarray of bool, shape (dim,)
+        Coordinates confined to [-1, 1].
+
+    Returns
+    -------
+    Modes or None
+        None when the first mode has no Laplace fit (a mode on a bound, a flat direction).
+    """
+    order = np.argsort(-log_probs, kind="stable")
+    first = laplace_fit(log_prob, candidates[order[0]], scale, bounded)
+    if first is None:
+        return None
+    fits = [first]
+    top = float(log_prob(first.mode[None, :])[0])
+    radius2 = (MODE_RADII**2) * float(stats.chi2.ppf(0.99, candidates.shape[1]))
+    eligible = order[log_probs[order] >= top - MODE_WINDOW]
+    for _ in range(EXTRA_MODE_STARTS):
+        explained = Modes(fits, np.ones(len(fits))).nearest_distance2(candidates[eligible])
+        eligible = eligible[explained > radius2]
+        if eligible.size == 0:
+            break
+        fit = laplace_fit(log_prob, candidates[eligible[0]], scale, bounded)
+        eligible = eligible[1:]
+        if fit is None:
+            continue
+        if Modes(fits, np.ones(len(fits))).nearest_distance2(fit.mode[None, :])[0] > radius2:
+            fits.append(fit)
+    log_evidence = log_prob(np.array([f.mode for f in fits])) + np.array(
+        [np.sum(np.log(np.diag(f.chol))) for f in fits]
+    )
+    weights = np.exp(log_evidence - log_evidence.max())
+    keep = weights / weights.sum() >= MIN_MODE_WEIGHT
+    kept = [f for f, k in zip(fits, keep, strict=True) if k]
+    return Modes(kept, weights[keep] / weights[keep].sum())
+
+
 #: Degrees of freedom and scale inflation of the independence proposal: heavier tails and a
 #: slightly wider scale than the Laplace fit keep the importance ratio bounded when the fit
 #: underestimates the posterior's spread (common practice for independence samplers).
@@ -230,20 +341,35 @@ T_DOF = 5.0
 T_INFLATE = 1.2
 
 
-def independence_move(fit: Laplace) -> emcee.moves.MHMove:
-    """An emcee Metropolis-Hastings move proposing from a multivariate t around the fit."""
-    chol = T_INFLATE * fit.chol
-    dim = fit.mode.size
+def independence_move(fit: Modes) -> emcee.moves.MHMove:
+    """An emcee Metropolis-Hastings move proposing from multivariate t's around the modes,
+    a mixture with the modes' weights (one t for one mode)."""
+    chols = [T_INFLATE * f.chol for f in fit.fits]
+    means = np.array([f.mode for f in fit.fits])
+    dim = means.shape[1]
+    # Each component's log normalising constant, up to what they share; with one component it
+    # cancels in the acceptance ratio and is left out.
+    log_norm = np.log(fit.weights) - np.array([np.sum(np.log(np.diag(c))) for c in chols])
 
     def log_q(x: np.ndarray) -> np.ndarray:
-        z = np.linalg.solve(chol, (x - fit.mode).T)
-        return -0.5 * (T_DOF + dim) * np.log1p(np.sum(z**2, axis=0) / T_DOF)
+        terms = []
+        for chol, mean in zip(chols, means, strict=True):
+            z = np.linalg.solve(chol, (x - mean).T)
+            terms.append(-0.5 * (T_DOF + dim) * np.log1p(np.sum(z**2, axis=0) / T_DOF))
+        if len(terms) == 1:
+            return terms[0]
+        return special.logsumexp(np.array(terms) + log_norm[:, None], axis=0)
 
     def propose(coords: np.ndarray, random: np.random.RandomState) -> tuple[np.ndarray, np.ndarray]:
         n = coords.shape[0]
         z = random.standard_normal((n, dim))
         w = random.chisquare(T_DOF, size=n) / T_DOF
-        new = fit.mode + (z / np.sqrt(w)[:, None]) @ chol.T
+        step = z / np.sqrt(w)[:, None]
+        if len(chols) == 1:
+            new = means[0] + step @ chols[0].T
+        else:
+            which = random.choice(len(chols), size=n, p=fit.weights)
+            new = means[which] + np.einsum("nj,nij->ni", step, np.array(chols)[which])
         return new, log_q(coords) - log_q(new)
 
     return emcee.moves.MHMove(propose)

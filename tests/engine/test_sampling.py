@@ -206,3 +206,69 @@ def test_a_stuck_walker_ends_in_a_warning_not_an_error():
     assert result.n_steps == 1000
     assert any("stopped at 1000 steps" in w for w in result.warnings)
     assert result.draws.shape[0] >= sampling.MIN_DRAWS_PER_WALKER * walkers
+
+
+def _two_gaussians(weight: float, centre: float):
+    """log density of ``weight N(-c, I) + (1 - weight) N(c, I)`` in 2-d, c on the first axis."""
+    shift = np.array([centre, 0.0])
+
+    def log_prob(x: np.ndarray) -> np.ndarray:
+        a = np.log(weight) - 0.5 * np.sum((x + shift) ** 2, axis=1)
+        b = np.log(1 - weight) - 0.5 * np.sum((x - shift) ** 2, axis=1)
+        return np.logaddexp(a, b)
+
+    return log_prob
+
+
+def test_find_modes_finds_a_second_mode_from_a_few_points_near_it():
+    # 0.7 N((-6, 0), I) + 0.3 N((6, 0), I): modes 12 sd apart, each with Laplace evidence
+    # equal to its weight (the components barely overlap: exp(-18) at the midpoint). The
+    # candidates are 500 draws of the first mode and three points near the second, as when
+    # the sampler sits in one mode and a few runs lie in the other.
+    rng = np.random.default_rng(0)
+    target = _two_gaussians(0.7, 6.0)
+    near_first = rng.normal(size=(500, 2)) + np.array([-6.0, 0.0])
+    near_second = rng.normal(size=(3, 2)) + np.array([6.0, 0.0])
+    candidates = np.vstack([near_first, near_second])
+    modes = sampling.find_modes(
+        target, candidates, target(candidates), np.ones(2), np.zeros(2, dtype=bool)
+    )
+    assert modes is not None and len(modes.fits) == 2
+    # Modes to the optimiser's tolerance, weights to the finite-difference Hessian's (1e-5).
+    np.testing.assert_allclose([f.mode[0] for f in modes.fits], [-6.0, 6.0], atol=1e-4)
+    np.testing.assert_allclose(modes.weights, [0.7, 0.3], atol=1e-4)
+
+
+def test_one_mode_is_one_mode():
+    # A banana-shaped single mode: every candidate lies in one basin, so no second search
+    # finds anything new, and the proposal stays the one-mode Laplace fit.
+    def banana(x: np.ndarray) -> np.ndarray:
+        return -0.5 * x[:, 0] ** 2 - 0.5 * (x[:, 1] - 0.5 * x[:, 0] ** 2) ** 2 / 0.25
+
+    rng = np.random.default_rng(1)
+    a = rng.normal(size=400)
+    candidates = np.column_stack([a, 0.5 * a**2 + 0.5 * rng.normal(size=400)])
+    modes = sampling.find_modes(
+        banana, candidates, banana(candidates), np.ones(2), np.zeros(2, dtype=bool)
+    )
+    assert modes is not None and len(modes.fits) == 1
+
+
+def test_a_chain_with_a_two_mode_proposal_shares_its_draws_by_the_modes_weights():
+    # Differential-evolution moves alone rarely cross 12 sd of empty space; the mixture
+    # proposal must, and the Metropolis-Hastings correction must leave the exact weights 0.7
+    # and 0.3 (the target's own). The share's Monte Carlo sd is sqrt(0.21 / ess) (a
+    # proportion, ess from the chain's own autocorrelation of the first coordinate, whose
+    # sign tells the mode); 5 such errors.
+    rng = np.random.default_rng(2)
+    target = _two_gaussians(0.7, 6.0)
+    fits = [Laplace(np.array([-6.0, 0.0]), np.eye(2)), Laplace(np.array([6.0, 0.0]), np.eye(2))]
+    modes = sampling.Modes(fits, np.array([0.5, 0.5]))  # weights off on purpose
+    initial = modes.draw(rng, n_walkers(2))
+    chain = sample_posterior(target, initial, rng, proposal=modes)
+    share = float(np.mean(chain.draws[:, 0] < 0))
+    assert abs(share - 0.7) < 5 * np.sqrt(0.21 / chain.ess.min())
+    # Within each mode the draws are N(+-6, I).
+    for side, centre in ((chain.draws[:, 0] < 0, -6.0), (chain.draws[:, 0] > 0, 6.0)):
+        assert abs(chain.draws[side, 0].mean() - centre) < 0.1
+        assert abs(chain.draws[side, 0].std() - 1.0) < 0.1

@@ -76,7 +76,9 @@ For each run COMMAND gets in its environment:
 and "{name}" in its arguments is replaced by that parameter's value. COMMAND runs in the
 current folder. A non-zero exit, a missing or malformed outputs file, or a run longer than
 --run-timeout is reported as a failed run, with the end of COMMAND's stderr as the message.
-A COMMAND that cannot start at all stops the worker (exit 1) and reports nothing. While
+The first failure of each kind is printed with that message. A COMMAND that cannot start
+at all, or whose outputs are refused for their shape (an observation missing, misnamed or
+of the wrong length), stops the worker (exit 1) and reports nothing. While
 COMMAND runs, its lease is extended, so a run may take longer than --lease-seconds; the
 extensions stop at --run-timeout or, without one, a day after the lease (a COMMAND that
 hangs then gives its point back): set --run-timeout for runs that can take longer.
@@ -96,6 +98,9 @@ FINISHED_EXIT = {"converged": 0, "budget_exhausted": 3, "failed": 5}
 _SPENT = "warning: run budget spent"
 #: The server's bounds on one lease request (API.md): runs at once, and seconds held.
 MAX_JOBS = 1000
+#: Kinds of run failure the worker prints a line for (the first run of each); beyond them,
+#: one line points to the full list.
+FAILURE_KINDS_SHOWN = 5
 MAX_LEASE_SECONDS = 604_800.0
 #: Seconds a default lease outlasts --run-timeout, for reporting after the command ends.
 LEASE_MARGIN = 60.0
@@ -700,6 +705,20 @@ class ProgressLine:
             self._key = key
             self._line(progress)
 
+    def note(self, text: str) -> None:
+        """Print a line of its own above the live line (on a terminal, which is redrawn)."""
+        if not self.enabled:
+            return
+        if self.tty:
+            self.stream.write("\r\x1b[K" + text + "\n")
+            if self._last is not None:
+                self._draw(self._last)
+            else:
+                self.stream.flush()
+        else:
+            self.stream.write(text + "\n")
+            self.stream.flush()
+
     def close(self) -> None:
         """Show the final state and end the line."""
         if not self.enabled or self._last is None:
@@ -733,9 +752,37 @@ class ProgressLine:
         return text + (" | stopping" if p.stopping else "")
 
 
+class FailureNotes:
+    """The first failure of each kind, as a line of its own: a progress line that only
+    counts failed runs does not say why they fail."""
+
+    def __init__(self, line: ProgressLine, calibration_id: str) -> None:
+        self.line = line
+        self.calibration_id = calibration_id
+        self._seen: set[str] = set()
+
+    def __call__(self, run_id: str, message: str) -> None:
+        key = " ".join(message.split())[:200]
+        if key in self._seen or len(self._seen) > FAILURE_KINDS_SHOWN:
+            return
+        self._seen.add(key)
+        if len(self._seen) > FAILURE_KINDS_SHOWN:
+            self.line.note(
+                f"more kinds of failure: honing runs {self.calibration_id} --state failed"
+            )
+            return
+        problem, _, tail = message.partition("; stderr: ")
+        last = tail.strip().splitlines()[-1].strip() if tail.strip() else ""
+        text = " ".join(problem.split())[:300] or "failed"
+        ending = f"; stderr ends: {last[:300]}" if last else ""
+        self.line.note(f"run {run_id} failed: {text}{ending}")
+
+
 def _run_worker(client: Client, cid: str, options: WorkerOptions, quiet: bool) -> int:
     line = ProgressLine(sys.stderr, enabled=not quiet)
-    worker = Worker(client, cid, options, on_progress=line.update)
+    worker = Worker(
+        client, cid, options, on_progress=line.update, on_failure=FailureNotes(line, cid)
+    )
     with _stop_on_signals(worker) as received:
         progress = worker.run()
     line.close()

@@ -199,6 +199,8 @@ class Worker:
         The `WorkerOptions`.
     on_progress
         Called with a `Progress` after every change (from the thread calling `run`).
+    on_failure
+        Called with a run id and the failure reported for it (from the thread calling `run`).
     """
 
     def __init__(
@@ -207,16 +209,19 @@ class Worker:
         calibration_id: str,
         options: WorkerOptions,
         on_progress: Callable[[Progress], None] | None = None,
+        on_failure: Callable[[str, str], None] | None = None,
     ) -> None:
         self.client = client
         self.calibration_id = calibration_id
         self.options = options
         self.on_progress = on_progress
+        self.on_failure = on_failure
         self.name = options.name or f"{socket.gethostname()}:{os.getpid()}"
         self.progress = Progress()
         self.error: ClientError | None = None
         self._stops = 0
-        self._finished: queue.Queue[tuple[str, str]] = queue.Queue()
+        # run id, outcome ("done", "failed", "conflict", "error") and the failure reported
+        self._finished: queue.Queue[tuple[str, str, str]] = queue.Queue()
         self._procs: dict[str, subprocess.Popen[bytes]] = {}
         self._lock = threading.Lock()
         self._outage = Outage(options.max_outage)
@@ -321,7 +326,7 @@ class Worker:
         """Run one command and report it; always ends by queueing the run's outcome, so that
         the loop never waits for a run whose thread died."""
         run_id = str(run["run_id"])
-        outcome = "error"
+        outcome, message = "error", ""
         try:
             result = self._run(run_id, run)
             self._extend_until_reported(run_id)
@@ -330,14 +335,20 @@ class Worker:
                 if not self._stops:  # one stop however many runs fail to start: a further
                     self.stop()  # one would terminate the commands that did start
                 return
-            outcome = self._report(result)
+            outcome, message = self._report(result)
+        except OutputsMisfit as exc:
+            # Every run of this command would be refused the same way: stop, as for a
+            # command that cannot start, rather than spend the budget on failed runs.
+            self.error = self.error or exc
+            if not self._stops:
+                self.stop()
         except ClientError as exc:
             if self.error is None:
                 self.error = exc
         finally:
             with self._lock:
                 self._extend_due.pop(run_id, None)
-            self._finished.put((run_id, outcome))
+            self._finished.put((run_id, outcome, message))
 
     def _run(self, run_id: str, run: Mapping[str, Any]) -> RunResult:
         """`run_command`, with anything unexpected in it turned into the run's failure."""
@@ -355,23 +366,32 @@ class Worker:
             with self._lock:
                 self._procs.pop(run_id, None)
 
-    def _report(self, result: RunResult) -> str:
+    def _report(self, result: RunResult) -> tuple[str, str]:
+        """Report one result; the outcome, and the failure message reported, if any."""
         cid, rid = self.calibration_id, result.run_id
         error = result.error or "failed"
         if result.outputs is not None:
             try:
                 self.client.report(cid, rid, outputs=result.outputs)
-                return "done"
+                return "done", ""
             except (ValidationFailed, PayloadTooLarge) as exc:
-                # The outputs do not fit the spec (names, lengths, size): a failed run.
+                if isinstance(exc, ValidationFailed) and _misshapen(exc):
+                    raise OutputsMisfit(
+                        f"the server refuses the command's outputs ({exc}); every run would "
+                        "fail the same way, so nothing was reported: make the command write "
+                        "each observation of the spec, with its number of values"
+                    ) from None
+                # A value the server cannot take (not finite, or far beyond the data): this
+                # point failed.
                 error = f"outputs refused by the server: {exc}"
             except Conflict:
-                return "conflict"
+                return "conflict", ""
+        message = _shortened(error)
         try:
-            self.client.report(cid, rid, error=_shortened(error))
+            self.client.report(cid, rid, error=message)
         except Conflict:
-            return "conflict"
-        return "failed"
+            return "conflict", ""
+        return "failed", message
 
     def _extend_until_reported(self, run_id: str) -> None:
         """The command is over: its lease is extended, whatever the limit, until the result
@@ -464,7 +484,7 @@ class Worker:
         changed = False
         while True:
             try:
-                run_id, outcome = (
+                run_id, outcome, message = (
                     self._finished.get(timeout=wait) if wait else self._finished.get_nowait()
                 )
             except queue.Empty:
@@ -476,6 +496,8 @@ class Worker:
                 self._update(done=self.progress.done + 1)
             elif outcome == "failed":
                 self._update(failed=self.progress.failed + 1)
+                if self.on_failure is not None:
+                    self.on_failure(run_id, message)
         if changed:
             self._update(running=len(active), stopping=bool(self._stops))
         elif self._stops and not self.progress.stopping:
@@ -500,6 +522,21 @@ class Worker:
             self.progress = new
             if self.on_progress is not None:
                 self.on_progress(new)
+
+
+class OutputsMisfit(SettingsError):
+    """The server refused a command's outputs for their shape: a setup mistake."""
+
+
+def _misshapen(exc: ValidationFailed) -> bool:
+    """Whether a refusal is about the outputs' shape (an observation missing, unknown, not a
+    list, or of the wrong length: located at ``outputs.<name>`` or above) rather than about
+    one value (located at ``outputs.<name>.<index>``), which only that point's run gets."""
+    for error in exc.errors:
+        loc = [part for part in error.get("loc") or [] if part != "body"]
+        if loc[:1] == ["outputs"] and len(loc) <= 2:
+            return True
+    return False
 
 
 def _shortened(message: str) -> str:

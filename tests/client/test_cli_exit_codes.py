@@ -249,7 +249,7 @@ def test_worker_stops_on_a_refused_token(fake_server: Any, cli: Any, one_line_er
     one_line_error(result, "Forbidden (403): wrong token")
 
 
-def test_refused_outputs_are_reported_as_a_failed_run(fake_server: Any, cli: Any) -> None:
+def test_a_refused_value_is_reported_as_a_failed_run(fake_server: Any, cli: Any) -> None:
     leases = iter([{"runs": [{"run_id": "r1", "parameters": {"a": 1.0}}], "status": "collecting"}])
     fake_server.on_call(
         "POST",
@@ -265,7 +265,7 @@ def test_refused_outputs_are_reported_as_a_failed_run(fake_server: Any, cli: Any
                     "title": "Invalid outputs",
                     "status": 422,
                     "detail": "outputs do not fit",
-                    "errors": [{"loc": ["outputs", "y"], "msg": "expected 4 values, got 1"}],
+                    "errors": [{"loc": ["outputs", "y", 0], "msg": "must be a finite number"}],
                 },
                 {},
             )
@@ -279,7 +279,7 @@ def test_refused_outputs_are_reported_as_a_failed_run(fake_server: Any, cli: Any
     assert result.returncode == 3, result.stderr
     puts = fake_server.bodies("PUT", f"{CAL}/runs/r1")
     assert puts[0] == {"outputs": {"y": [1.0]}}
-    assert "outputs.y: expected 4 values, got 1" in puts[1]["error"]
+    assert "outputs.y.0: must be a finite number" in puts[1]["error"]
 
 
 def test_worker_honours_retry_after_while_the_server_refits(fake_server: Any, cli: Any) -> None:

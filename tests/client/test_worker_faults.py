@@ -75,6 +75,51 @@ def test_a_refused_result_is_reported_as_a_short_failure(
     assert len(error) <= ERROR_CHARS and "characters in all ...]" in error
 
 
+def _refused_at(loc: list[Any]) -> Any:
+    """A report handler refusing outputs with one field error at ``loc``, as the server does."""
+
+    def report(body: dict[str, Any]) -> tuple[int, Any, dict[str, str]]:
+        if "outputs" in body:
+            error = {"loc": ["body", *loc], "msg": "expected 3 values, got 2"}
+            problem = {"title": "Unprocessable Entity", "status": 422, "errors": [error]}
+            return 422, problem, {}
+        return 200, {"run_id": "r1", "state": "failed", "trust": None}, {}
+
+    return report
+
+
+def test_outputs_of_the_wrong_shape_stop_the_worker_and_report_nothing(
+    fake_server: Any, cli: Any, one_line_error: Any
+) -> None:
+    # An observation missing, misnamed or of the wrong length is the command's mistake, the
+    # same for every run: reported as failures, it spent a whole budget of 400 runs, and the
+    # calibration then advised raising the budget.
+    one_run_then(fake_server)
+    fake_server.on_call("PUT", f"{CAL}/runs/r1", _refused_at(["outputs", "y"]))
+    result = cli(
+        "worker", "c1", "-q", "--", *writes('{"y": [1, 2]}'), url=fake_server.url, token="t"
+    )
+    assert result.returncode == 1
+    one_line_error(result, "refuses the command's outputs", "outputs.y: expected 3 values")
+    assert ["outputs" in body for body in fake_server.bodies("PUT", f"{CAL}/runs/r1")] == [True]
+
+
+def test_the_worker_says_why_runs_fail(fake_server: Any, cli: Any) -> None:
+    # The progress line counts failed runs; the first failure of each kind gets a line of
+    # its own with the command's status and the end of its stderr.
+    one_run_then(fake_server)
+    fake_server.on("PUT", f"{CAL}/runs/r1", {"run_id": "r1", "state": "failed", "trust": None})
+    code = (
+        "import sys; print('step 1 ok', file=sys.stderr); "
+        "print('singular matrix', file=sys.stderr); sys.exit(2)"
+    )
+    result = cli("worker", "c1", "--", sys.executable, "-c", code, url=fake_server.url, token="t")
+    assert result.returncode == 3, result.stderr
+    assert "run r1 failed: the command exited with status 2; stderr ends: singular matrix" in (
+        result.stderr
+    )
+
+
 def test_a_command_that_cannot_start_stops_the_worker_and_reports_nothing(
     fake_server: Any, cli: Any, one_line_error: Any
 ) -> None:

@@ -25,9 +25,20 @@ def hash_token(token: str) -> str:
     return hashlib.sha256(token.encode()).hexdigest()
 
 
-def check_token(presented: str | None, expected_hash: str) -> None:
-    """Raise `Unauthorized` without a token, `Forbidden` when it does not match the hash."""
+#: What a call guarded by the admin key needs, said where it is refused: a client creating a
+#: calibration has no token yet, so "needs a token" would point at the wrong fix.
+ADMIN_KEY_NEEDED = (
+    "this server creates calibrations only with its admin key, sent as 'Authorization: "
+    "Bearer <admin key>' (command line: --admin-key-file F or HONING_ADMIN_KEY)"
+)
+
+
+def check_token(presented: str | None, expected_hash: str, what: str | None = None) -> None:
+    """Raise `Unauthorized` without a token, `Forbidden` when it does not match the hash;
+    ``what`` replaces the messages for a credential other than a calibration token."""
     if not presented:
-        raise Unauthorized("this call needs 'Authorization: Bearer <token>'")
+        raise Unauthorized(what or "this call needs 'Authorization: Bearer <token>'")
     if not hmac.compare_digest(hash_token(presented), expected_hash):
-        raise Forbidden("the token does not grant access to this resource")
+        raise Forbidden(
+            f"wrong key: {what}" if what else "the token does not grant access to this resource"
+        )

@@ -7,7 +7,7 @@ from typing import Annotated
 from fastapi import Depends, Request
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 
-from honing.api.auth import check_token
+from honing.api.auth import ADMIN_KEY_NEEDED, check_token
 from honing.api.service import CalibrationService
 from honing.api.store import Store
 
@@ -43,7 +43,7 @@ async def _admin(request: Request, credentials: Credentials) -> None:
     """Require the admin key when the server has one."""
     expected = request.app.state.admin_key_hash
     if expected is not None:
-        check_token(credentials.credentials if credentials else None, expected)
+        check_token(credentials.credentials if credentials else None, expected, ADMIN_KEY_NEEDED)
 
 
 AuthorizedCalibration = Annotated[str, Depends(_authorized)]

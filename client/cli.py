@@ -292,7 +292,9 @@ def build_parser() -> argparse.ArgumentParser:
     p = command("worker", "evaluate leased points with a command", WORKER_HELP)
     p.add_argument("id", metavar="ID", help="calibration id")
     p.add_argument("command", metavar="COMMAND", nargs="*", help="the simulator, after '--'")
-    p.add_argument("-j", "--jobs", type=int, default=1, metavar="N", help="runs at once")
+    p.add_argument(
+        "-j", "--jobs", type=int, default=1, metavar="N", help="runs at once (default: 1)"
+    )
     p.add_argument(
         "--run-timeout",
         type=float,

@@ -28,8 +28,14 @@ def test_admin_key_guards_creation(admin_client: AppClient) -> None:
     response = admin_client.post("/v1/calibrations", json=SPEC)
     assert_problem(response, 401)
     assert response.headers["www-authenticate"] == "Bearer"
+    # Whoever creates a calibration has no token yet: the answer names the admin key and how
+    # the command line sends it, with or without a wrong key.
+    assert "admin key" in response.json()["detail"]
+    assert "HONING_ADMIN_KEY" in response.json()["detail"]
     wrong = {"Authorization": "Bearer not-the-key"}
-    assert_problem(admin_client.post("/v1/calibrations", json=SPEC, headers=wrong), 403)
+    refused = admin_client.post("/v1/calibrations", json=SPEC, headers=wrong)
+    assert_problem(refused, 403)
+    assert refused.json()["detail"].startswith("wrong key: this server creates calibrations")
     right = {"Authorization": "Bearer the-admin-key"}
     created = admin_client.post("/v1/calibrations", json=SPEC, headers=right)
     assert created.status_code == 201

@@ -164,6 +164,9 @@ class Client:
         self.token = token or os.environ.get("HONING_TOKEN") or None
         self.admin_key = admin_key or os.environ.get("HONING_ADMIN_KEY") or None
         self.retry = retry or RetryPolicy()
+        #: Called with what went wrong before each wait to retry a call (from the thread
+        #: making it), so that a long-lived caller can say why it is waiting.
+        self.on_retry: Callable[[str], None] | None = None
         self._cancelled = threading.Event()
         self._sleep = sleep or self._cancellable_sleep
         self._rng = random.Random()
@@ -414,6 +417,7 @@ class Client:
                         + (f" after {tries} attempts" if tries > 1 else "")
                     ) from None
                 wait = self.retry.delay(attempt, self._rng)
+                trouble = f"cannot reach {self.url} ({type(exc).__name__})"
             else:
                 status = response.status_code
                 if status < 400:
@@ -427,6 +431,9 @@ class Client:
                     if hint is not None
                     else self.retry.delay(attempt, self._rng)
                 )
+                trouble = f"the server answers {status}"
+            if self.on_retry is not None:
+                self.on_retry(trouble)
             self._sleep(wait)
             if self._cancelled.is_set() and persistent:
                 raise ConnectionFailed(f"gave up waiting for {self.url}: cancelled")

@@ -702,7 +702,7 @@ class ProgressLine:
             if now - self._written >= 0.1:
                 self._draw(progress)
             return
-        key = (progress.round, progress.status, progress.stopping)
+        key = (progress.round, progress.status, progress.stopping, progress.trouble)
         if key != self._key or now - self._written >= 30.0:
             self._key = key
             self._line(progress)
@@ -751,6 +751,9 @@ class ProgressLine:
             f" | validation error {format_number(p.validation_error, 3)}"
             f" | {p.status or '-'}"
         )
+        if p.trouble_since is not None:
+            since = time.strftime("%H:%M:%S", time.localtime(p.trouble_since))
+            text += f" | retrying since {since}: {p.trouble}"
         return text + (" | stopping" if p.stopping else "")
 
 

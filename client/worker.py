@@ -103,6 +103,9 @@ class Progress:
     validation_error: float | None = None
     status: str = ""
     stopping: bool = False
+    #: Since when (time.time) and why calls to the server are being retried, if they are.
+    trouble_since: float | None = None
+    trouble: str = ""
 
 
 @dataclass(frozen=True)
@@ -228,6 +231,9 @@ class Worker:
         # run id -> when to extend its lease next, and until when to extend it at all
         self._extend_due: dict[str, tuple[float, float]] = {}
         self._extend_wake = threading.Event()  # a run joined the schedule, or the end came
+        # Since when and why calls are being retried (set from any thread, shown by `run`).
+        self._trouble: tuple[float, str] | None = None
+        client.on_retry = self._retrying
 
     @property
     def stops(self) -> int:
@@ -271,13 +277,32 @@ class Worker:
                 if self.on_progress is not None and now >= next_poll and not self._stops:
                     next_poll = now + PROGRESS_POLL
                     self._poll()
+                self._show_trouble()
                 self._collect(active, wait=max(0.05, min(next_lease - time.monotonic(), 0.5)))
+        self._show_trouble()
         self._update(running=len(active), stopping=bool(self._stops))
         if not self._stops and not self.error:
             self._poll()
         return self.progress
 
     # -- internals -----------------------------------------------------------------------
+
+    def _retrying(self, why: str) -> None:
+        """A call to the server failed and will be retried: remember since when, and why."""
+        with self._lock:
+            since = self._trouble[0] if self._trouble else time.time()
+            self._trouble = (since, why)
+
+    def _answered(self) -> None:
+        """A call went through: whatever trouble there was is over."""
+        with self._lock:
+            self._trouble = None
+
+    def _show_trouble(self) -> None:
+        with self._lock:
+            trouble = self._trouble
+        since, why = trouble if trouble else (None, "")
+        self._update(trouble_since=since, trouble=why)
 
     def _lease(self, active: dict[str, threading.Thread]) -> float | None:
         """Lease for the free slots and start them; seconds until the next try, or None."""
@@ -295,6 +320,7 @@ class Worker:
             self.error = exc
             return None
         self._outage.answered()
+        self._answered()
         self._update(status=lease.status)
         if self._stops and lease.runs:
             # Granted while the worker was stopping (the request was in flight or retrying):
@@ -373,6 +399,7 @@ class Worker:
         if result.outputs is not None:
             try:
                 self.client.report(cid, rid, outputs=result.outputs)
+                self._answered()
                 return "done", ""
             except (ValidationFailed, PayloadTooLarge) as exc:
                 if isinstance(exc, ValidationFailed) and _misshapen(exc):
@@ -391,6 +418,7 @@ class Worker:
             self.client.report(cid, rid, error=message)
         except Conflict:
             return "conflict", ""
+        self._answered()
         return "failed", message
 
     def _extend_until_reported(self, run_id: str) -> None:
@@ -508,6 +536,7 @@ class Worker:
             summary = self.client.posterior(self.calibration_id)
         except ClientError:
             return  # progress only: leasing and reporting surface real problems
+        self._answered()
         diagnostics = summary.get("diagnostics") or {}
         error = diagnostics.get("validation_error")
         self._update(

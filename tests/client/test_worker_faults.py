@@ -159,6 +159,26 @@ def test_the_worker_rides_out_a_server_restart(fake_server: Any, cli: Any) -> No
     assert len(fake_server.bodies("POST", f"{CAL}/runs")) == 14
 
 
+def test_the_worker_says_while_it_holds_a_result_the_server_does_not_take(
+    fake_server: Any, cli: Any
+) -> None:
+    # The result is retried until the server takes it (it must not be lost), which
+    # --max-outage does not cut short; the progress line said nothing meanwhile.
+    one_run_then(fake_server)
+    answers = iter([(503, SERVICE_UNAVAILABLE, {"Retry_After": "1"})] * 3)
+    fake_server.on_call(
+        "PUT",
+        f"{CAL}/runs/r1",
+        lambda body: next(answers, (200, {"run_id": "r1", "state": "done", "trust": 1.0}, {})),
+    )
+    result = cli("worker", "c1", "--", *writes('{"y": [1]}'), url=fake_server.url, token="t")
+    assert result.returncode == 3, result.stderr
+    lines = result.stderr.splitlines()
+    waiting = [line for line in lines if "retrying since" in line]
+    assert waiting and waiting[0].endswith("the server answers 503"), lines
+    assert "retrying" not in lines[-1], lines  # over once the result is in
+
+
 def test_an_outage_longer_than_allowed_ends_the_worker(
     fake_server: Any, cli: Any, one_line_error: Any
 ) -> None:

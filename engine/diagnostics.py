@@ -165,7 +165,8 @@ def marginal_kl(post: np.ndarray, family: Family) -> float:
     post = np.asarray(post, dtype=float)
     if np.unique(post).size < 2:
         return float("nan")
-    entropy = stats.differential_entropy(post, method="vasicek")
+    with np.errstate(divide="ignore"):  # repeated draws give empty spacings: -inf, NaN below
+        entropy = stats.differential_entropy(post, method="vasicek")
     kl = -entropy - float(np.mean(reference_logpdf(family, post)))
     return float(kl) if np.isfinite(kl) else float("nan")
 

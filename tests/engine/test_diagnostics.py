@@ -1,4 +1,5 @@
 import itertools
+import warnings
 
 import numpy as np
 import pytest
@@ -68,6 +69,12 @@ def test_marginal_kl_matches_closed_forms(family, draw, exact):
 
 def test_marginal_kl_is_nan_for_draws_that_do_not_spread():
     assert np.isnan(marginal_kl(np.full(100, 0.3), "hermite"))
+    # A chain stuck long enough repeats each value more often than the spacing spans: the
+    # estimate is undefined, and says so quietly rather than with a warning.
+    stuck = np.repeat(np.random.default_rng(0).normal(size=100), 300)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert np.isnan(marginal_kl(stuck, "hermite"))
 
 
 def test_gaussian_kl_zero_for_identical():

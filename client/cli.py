@@ -594,11 +594,12 @@ def _report(args: argparse.Namespace) -> int:
 
 def _import(args: argparse.Namespace) -> int:
     with _client(args) as client:
-        runs = read_runs(args.file, client.calibration(args.id))
-        if not runs:
+        archive = read_runs(args.file, client.calibration(args.id))
+        if not archive.runs:
             raise SettingsError(f"{args.file} holds no finished runs to import")
-        answer = client.import_runs(args.id, runs)
-    _out(f"imported {answer.get('imported', len(runs))} runs into {args.id}")
+        answer = client.import_runs(args.id, archive.runs)
+    skipped = f" (skipped {archive.skipped} not done or without outputs)" if archive.skipped else ""
+    _out(f"imported {answer.get('imported', len(archive.runs))} runs into {args.id}{skipped}")
     return EXIT["ok"]
 
 

@@ -11,12 +11,13 @@ import math
 import re
 import tomllib
 from collections.abc import Mapping
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 from honing.client.errors import SettingsError
 
-__all__ = ["load_spec", "read_runs"]
+__all__ = ["RunsFile", "load_spec", "read_runs"]
 
 _INDEXED = re.compile(r"^(?P<name>.+?)(?:\[(?P<a>\d+)\]|[.:_](?P<b>\d+))$")
 
@@ -55,7 +56,16 @@ def _refuse_dates(value: Any, path: Path, where: tuple[str | int, ...]) -> None:
         raise SettingsError(f"{path}: {field} is a date or time; no spec field takes one")
 
 
-def read_runs(path: str | Path, calibration: Mapping[str, Any]) -> list[dict[str, Any]]:
+@dataclass(frozen=True)
+class RunsFile:
+    """The runs of an archive to import, and how many of its runs were left out (not done,
+    or without outputs)."""
+
+    runs: list[dict[str, Any]]
+    skipped: int
+
+
+def read_runs(path: str | Path, calibration: Mapping[str, Any]) -> RunsFile:
     """Read runs evaluated elsewhere, as the import endpoint expects them.
 
     A ``.json`` file holds ``{"runs": [...]}`` or a list of ``{"parameters", "outputs"}``.
@@ -85,15 +95,16 @@ def read_runs(path: str | Path, calibration: Mapping[str, Any]) -> list[dict[str
                     f"{path}: run {i} must be an object {{'parameters', 'outputs'}}, "
                     f"got {type(run).__name__}"
                 )
-        return [
+        kept = [
             {"parameters": run.get("parameters"), "outputs": run.get("outputs")}
             for run in runs
             if run.get("state") in (None, "", "done") and run.get("outputs") is not None
         ]
+        return RunsFile(kept, len(runs) - len(kept))
     return _runs_from_csv(text, calibration, path)
 
 
-def _runs_from_csv(text: str, calibration: Mapping[str, Any], path: Path) -> list[dict[str, Any]]:
+def _runs_from_csv(text: str, calibration: Mapping[str, Any], path: Path) -> RunsFile:
     spec = calibration.get("spec", calibration)
     names = [p["name"] for p in spec.get("parameters", [])]
     sizes = {o["name"]: len(o["values"]) for o in spec.get("observations", [])}
@@ -110,17 +121,19 @@ def _runs_from_csv(text: str, calibration: Mapping[str, Any], path: Path) -> lis
     for obs, size in sizes.items():
         if sorted(columns[obs]) != list(range(size)):
             raise SettingsError(f"{path}: expected columns {obs}[0] to {obs}[{size - 1}]")
-    runs = []
+    runs, skipped = [], 0
     for line, row in enumerate(reader, start=2):
         if row.get("state", "done") not in ("done", ""):
+            skipped += 1
             continue
         if all(not (row.get(c) or "").strip() for c in columns[next(iter(sizes))].values()):
+            skipped += 1
             continue
         cell = functools.partial(_cell, row, f"{path}, line {line}")
         parameters = {n: cell(n) for n in names}
         outputs = {obs: [cell(columns[obs][i]) for i in range(size)] for obs, size in sizes.items()}
         runs.append({"parameters": parameters, "outputs": outputs})
-    return runs
+    return RunsFile(runs, skipped)
 
 
 def _cell(row: Mapping[str, str | None], where: str, column: str) -> float:

@@ -134,7 +134,9 @@ def test_worker_runs_a_calibration_to_its_end(
     other, other_token = create("imported")
     result = cli("import", other, str(archive), url=live_server, token=other_token)
     assert result.returncode == 0, result.stderr
-    assert result.stdout.strip() == f"imported {len(done)} runs into {other}"
+    left = len(runs) - len(done)  # leased, expired or failed: not imported, and said so
+    skipped = f" (skipped {left} not done or without outputs)" if left else ""
+    assert result.stdout.strip() == f"imported {len(done)} runs into {other}{skipped}"
     info = json.loads(cli("status", other, "--json", url=live_server, token=other_token).stdout)
     assert info["runs_completed"] == len(done)
     # So does the JSON one ('-o' with a .json name), whole run records and all.
@@ -144,7 +146,7 @@ def test_worker_runs_a_calibration_to_its_end(
     third, third_token = create("imported-json")
     result = cli("import", third, str(records), url=live_server, token=third_token)
     assert result.returncode == 0, result.stderr
-    assert result.stdout.strip() == f"imported {len(done)} runs into {third}"
+    assert result.stdout.strip() == f"imported {len(done)} runs into {third}{skipped}"
 
 
 def test_failed_runs_carry_the_end_of_stderr(

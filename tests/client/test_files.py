@@ -27,14 +27,18 @@ def test_json_runs_keep_parameters_and_outputs_of_finished_runs_only(tmp_path: P
     ]  # fmt: skip
     path = tmp_path / "runs.json"
     path.write_text(json.dumps({"runs": runs}))
-    assert read_runs(path, SPEC) == [
+    archive = read_runs(path, SPEC)
+    assert archive.runs == [
         {"parameters": {"a": a}, "outputs": {"y": [a + 1.0]}} for a in (1.0, 2.0, 3.0)
     ]
+    assert archive.skipped == 3  # counted, so the command line can say so
 
 
 def test_csv_rows_follow_the_same_rules(tmp_path: Path) -> None:
     path = tmp_path / "runs.csv"
     path.write_text("state,a,y[0]\n,1.0,2.0\ndone,2.0,3.0\nfailed,4.0,\nleased,5.0,\n")
-    assert read_runs(path, SPEC) == [
+    archive = read_runs(path, SPEC)
+    assert archive.runs == [
         {"parameters": {"a": a}, "outputs": {"y": [a + 1.0]}} for a in (1.0, 2.0)
     ]
+    assert archive.skipped == 2

@@ -112,6 +112,13 @@ def run_server(
     ]
     for worker in workers:
         worker.start()
+    if not workers:
+        # Without one, calibrations wait in "fitting" for good, and nothing else says why.
+        log.warning(
+            "no refit workers in this process: results are fitted only while a 'honing "
+            "refitter --store %s' (or another server) runs on the same store",
+            store_url,
+        )
     try:
         uvicorn.run(app, host=host, port=port, log_config=None, access_log=False)
     finally:

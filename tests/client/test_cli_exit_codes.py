@@ -449,13 +449,19 @@ def test_serve_passes_its_options_and_a_default_store(
     assert kwargs == {"admin_key_file": None, "refit_workers": 2}
 
 
+@pytest.mark.parametrize("refit_workers", ["1", "0"])
 def test_serve_stops_gracefully_on_sigterm_with_0(
-    unused_port: Callable[[], int], tmp_path: Path, cli_process: Any
+    unused_port: Callable[[], int], tmp_path: Path, cli_process: Any, refit_workers: str
 ) -> None:
     # SIGTERM is how a service is stopped: after the graceful shutdown (refit worker stopped
     # by the server itself, not left to notice its parent is gone) the exit status is 0.
+    # Without refit workers the log says that fits need a refitter elsewhere: calibrations
+    # otherwise wait in "fitting" with nothing to say why.
     port = unused_port()
-    proc = cli_process("serve", "--port", str(port), "--store", f"sqlite:///{tmp_path}/s.db")
+    store = f"sqlite:///{tmp_path}/s.db"
+    proc = cli_process(
+        "serve", "--port", str(port), "--store", store, "--refit-workers", refit_workers
+    )
     try:
         deadline = time.monotonic() + 60
         while True:
@@ -474,6 +480,7 @@ def test_serve_stops_gracefully_on_sigterm_with_0(
             proc.communicate()
     assert proc.returncode == 0, err
     assert "Traceback" not in err and "serving process is gone" not in err
+    assert ("no refit workers in this process" in err) is (refit_workers == "0"), err
 
 
 @pytest.mark.parametrize(

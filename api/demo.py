@@ -256,7 +256,14 @@ def demo_spec() -> dict[str, Any]:
             },
         ],
         "observations": [
-            {"name": o["name"], "values": o["values"], "sd": o["sd"], "coords": o["coords"]}
+            {
+                "name": o["name"],
+                "values": o["values"],
+                "sd": o["sd"],
+                "coords": o["coords"],
+                "unit": "C/C0",
+                "coords_label": "time [d]",
+            }
             for o in _OBSERVED
         ],
         "noise": {"scale": "fixed"},

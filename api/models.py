@@ -99,6 +99,14 @@ class ObservationSpec(_Input):
     values: list[Number] = Field(min_length=1)
     sd: Number | list[Number] = Field(description="one sd for all values, or one per value")
     coords: list[Number] | None = None
+    unit: str | None = Field(
+        None, max_length=MAX_UNIT_CHARS, description="unit of the values, shown on plots"
+    )
+    coords_label: str | None = Field(
+        None,
+        max_length=MAX_UNIT_CHARS,
+        description="what the coordinates are, with their unit (e.g. 'time [d]'), shown on plots",
+    )
 
 
 class NoiseSpec(_Input):

@@ -54,6 +54,8 @@ ERRORBAR_MAX_POINTS = 150
 #: of two in 7.4 inches, holds about 40 at the label's size) and of a pair plot's labels.
 MARGINAL_LABEL_CHARS = 36
 PAIR_LABEL_CHARS = 18
+#: Characters per line of a channel plot's axis labels (a 5.6-inch panel).
+CHANNEL_LABEL_CHARS = 48
 #: A posterior narrower than this share of the plotted prior range gets a close-up panel.
 CLOSE_UP_SHARE = 0.2
 #: Resolution of every PNG.
@@ -549,7 +551,12 @@ def _channel_figure(
             label="data ± 1 sd",
         )
     ax.set_title(_tex(obs.name), fontsize=10)
-    ax.set_xlabel("coordinate" if obs.coords is not None else "index")
+    if obs.coords is not None:
+        ax.set_xlabel(_label(obs.coords_label or "coordinate", CHANNEL_LABEL_CHARS))
+    else:
+        ax.set_xlabel("index")
+    if obs.unit:
+        ax.set_ylabel(_label(f"{obs.name} [{obs.unit}]", CHANNEL_LABEL_CHARS))
     ax.legend(fontsize=7, frameon=False)
     return fig, notes
 

@@ -57,12 +57,15 @@ class Parameter:
 
 @dataclass(frozen=True, eq=False)
 class Observation:
-    """One observation channel: measured values with their sd, optional coordinates."""
+    """One observation channel: measured values with their sd, optional coordinates, and
+    optional labels for plots (the values' unit, what the coordinates are)."""
 
     name: str
     values: np.ndarray
     sd: np.ndarray
     coords: np.ndarray | None = None
+    unit: str | None = None
+    coords_label: str | None = None
 
     @property
     def size(self) -> int:
@@ -287,6 +290,8 @@ class CalibrationSpec:
                     "values": o.values.tolist(),
                     "sd": o.sd.tolist(),
                     "coords": None if o.coords is None else o.coords.tolist(),
+                    "unit": o.unit,
+                    "coords_label": o.coords_label,
                 }
                 for o in self.observations
             ],
@@ -296,6 +301,14 @@ class CalibrationSpec:
             "budget": {"max_runs": self.max_runs},
             "seed": self.seed,
         }
+
+
+def _label(item: Mapping[str, Any], key: str, loc: tuple[str | int, ...]) -> str | None:
+    """An optional text field of at most `MAX_UNIT_CHARS` characters (a label on plots)."""
+    text = item.get(key)
+    if text is not None and not (isinstance(text, str) and len(text) <= MAX_UNIT_CHARS):
+        raise SpecError.at((*loc, key), f"must be a string of at most {MAX_UNIT_CHARS} characters")
+    return text
 
 
 def _is_number(value: Any) -> bool:
@@ -427,7 +440,7 @@ def _observations(value: Any) -> tuple[Observation, ...]:
         errors.extend(
             ((*loc, str(k)), "unknown field")
             for k in item
-            if k not in {"name", "values", "sd", "coords"}
+            if k not in {"name", "values", "sd", "coords", "unit", "coords_label"}
         )
         try:
             name = _check_name(item.get("name"), (*loc, "name"))
@@ -453,7 +466,9 @@ def _observations(value: Any) -> tuple[Observation, ...]:
                     raise SpecError.at(
                         (*loc, "coords"), f"expected {values.size} values, got {coords.size}"
                     )
-            out.append(Observation(name, values, sd, coords))
+            unit = _label(item, "unit", loc)
+            coords_label = _label(item, "coords_label", loc)
+            out.append(Observation(name, values, sd, coords, unit, coords_label))
         except SpecError as exc:
             errors.extend((tuple(e["loc"]), str(e["msg"])) for e in exc.errors)
     names = [o.name for o in out]

@@ -413,3 +413,13 @@ def test_error_bars_only_where_they_leave_the_bands_visible(points: int) -> None
     bars = [c for c in fig.axes[0].containers if c.has_yerr]
     assert len(bars) == (1 if points <= report.ERRORBAR_MAX_POINTS else 0)
     assert any("without their ± 1 sd bars" in n for n in notes) == (bars == [])
+
+
+def test_channel_axes_carry_the_observation_labels() -> None:
+    data = _long_spec(5).to_dict()
+    data["observations"][0].update(
+        coords=[0.1, 0.2, 0.3, 0.4, 0.5], unit="m", coords_label="time [d]"
+    )
+    obs = CalibrationSpec.from_dict(data).observations[0]
+    fig, _ = report._channel_figure(obs, {}, {})
+    assert (fig.axes[0].get_xlabel(), fig.axes[0].get_ylabel()) == ("time [d]", "head [m]")

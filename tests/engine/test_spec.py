@@ -106,6 +106,16 @@ def test_parameters_outside_support_rejected():
     assert ("parameters", "velocity") in _locs(exc_info)
 
 
+def test_observation_labels_round_trip():
+    data = _spec()
+    data["observations"][0].update(unit="C/C0", coords_label="time [d]", coords=[1, 2, 3])
+    spec = CalibrationSpec.from_dict(data)
+    first, second = spec.observations
+    assert (first.unit, first.coords_label) == ("C/C0", "time [d]")
+    assert (second.unit, second.coords_label) == (None, None)
+    assert CalibrationSpec.from_dict(spec.to_dict()).to_dict() == spec.to_dict()
+
+
 @pytest.mark.parametrize(
     ("change", "loc"),
     [
@@ -121,6 +131,14 @@ def test_parameters_outside_support_rejected():
                 ]
             },
             ("parameters", 0, "unit"),
+        ),
+        (
+            {"observations": [{"name": "y", "values": [1.0], "sd": 1.0, "unit": "K" * 65}]},
+            ("observations", 0, "unit"),
+        ),
+        (
+            {"observations": [{"name": "y", "values": [1.0], "sd": 1.0, "coords_label": 3}]},
+            ("observations", 0, "coords_label"),
         ),
     ],
 )

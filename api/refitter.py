@@ -36,6 +36,11 @@ __all__ = ["Refitter"]
 log = logging.getLogger("honing.api.refitter")
 
 
+#: While the store is unavailable: seconds between polls, and between log lines.
+OUTAGE_POLL = 2.0
+OUTAGE_LOG_EVERY = 60.0
+
+
 class Refitter:
     """Runs queued refit jobs of one store."""
 
@@ -138,15 +143,38 @@ class Refitter:
         return self._outcome("written" if swapped else "stale")
 
     def run_forever(self, stop: threading.Event, poll: float = 0.5) -> None:
-        """Poll for due jobs until ``stop`` is set; store outages and errors are logged."""
+        """Poll for due jobs until ``stop`` is set; store outages and errors are logged.
+
+        An outage is logged when it begins, every `OUTAGE_LOG_EVERY` seconds while it lasts
+        and when it ends, and polled at most every `OUTAGE_POLL` seconds: a store down at
+        start-up used to log a line twice a second for as long as it stayed down.
+        """
+        down_since: float | None = None
+        logged = 0.0
         while not stop.is_set():
             try:
                 outcomes = self.step()
             except StoreUnavailable as exc:
-                log.warning("store unavailable", extra={"error": str(exc)})
-                outcomes = []
+                now = time.monotonic()
+                if down_since is None:
+                    down_since = logged = now
+                    log.warning("store unavailable", extra={"error": str(exc)})
+                elif now - logged >= OUTAGE_LOG_EVERY:
+                    logged = now
+                    log.warning(
+                        "store still unavailable",
+                        extra={"error": str(exc), "seconds": round(now - down_since)},
+                    )
+                stop.wait(max(poll, OUTAGE_POLL))
+                continue
             except Exception:  # a long-lived worker logs a bug and keeps serving other jobs
                 log.exception("refit loop error")
                 outcomes = []
+            if down_since is not None:
+                log.info(
+                    "store available again",
+                    extra={"seconds": round(time.monotonic() - down_since)},
+                )
+                down_since = None
             if not outcomes or all(o == "locked" for o in outcomes):
                 stop.wait(poll)

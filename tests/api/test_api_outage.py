@@ -1,10 +1,12 @@
 import logging
+import threading
 import time
 
 import pytest
 from helpers_api import create, lease, make_client, report
 from test_api_auth import assert_problem
 
+from honing.api import refitter as refitter_module
 from honing.api.settings import Settings
 from honing.api.store.redis_store import RedisStore
 
@@ -91,3 +93,29 @@ def test_redis_out_of_memory_is_503_not_500(redis_url: str) -> None:
             admin.config_set("maxmemory", "0")
             admin.close()
         assert len(lease(client, cal)) == 1
+
+
+def test_a_refitter_logs_a_store_outage_when_it_begins_and_ends(
+    unused_port, caplog, monkeypatch
+) -> None:  # type: ignore[no-untyped-def]
+    # Nothing listens on the port: every poll meets an unavailable store. The refitter used
+    # to log a warning on every poll, twice a second, for as long as the outage lasted.
+    monkeypatch.setattr(refitter_module, "OUTAGE_POLL", 0.0)
+    store = RedisStore(f"redis://127.0.0.1:{unused_port()}/0")
+    worker = refitter_module.Refitter(store)
+    stop = threading.Event()
+    polls = []
+    step = worker.step
+
+    def counted(limit: int = 16) -> list[str]:
+        polls.append(1)
+        if len(polls) == 6:
+            monkeypatch.setattr(worker, "step", lambda limit=16: stop.set() or [])
+        return step(limit)
+
+    monkeypatch.setattr(worker, "step", counted)
+    with caplog.at_level(logging.INFO, logger="honing.api.refitter"):
+        worker.run_forever(stop, poll=0.0)
+    messages = [r.getMessage() for r in caplog.records]
+    assert len(polls) == 6
+    assert messages == ["store unavailable", "store available again"]

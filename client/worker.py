@@ -227,6 +227,7 @@ class Worker:
         self._finished: queue.Queue[tuple[str, str, str]] = queue.Queue()
         self._procs: dict[str, subprocess.Popen[bytes]] = {}
         self._lock = threading.Lock()
+        self._stop_lock = threading.Lock()  # not taken by `stop`, which signal handlers call
         self._outage = Outage(options.max_outage)
         # run id -> when to extend its lease next, and until when to extend it at all
         self._extend_due: dict[str, tuple[float, float]] = {}
@@ -286,6 +287,15 @@ class Worker:
         return self.progress
 
     # -- internals -----------------------------------------------------------------------
+
+    def _stop_once(self, error: ClientError) -> None:
+        """Keep the first setup error and stop, once however many runs meet one at the same
+        moment: a second stop would terminate the commands that did start (checked and
+        counted under a lock; 1 trial in 8 stopped twice with 11 runs refused at once)."""
+        with self._stop_lock:
+            self.error = self.error or error
+            if not self._stops:
+                self.stop()
 
     def _retrying(self, why: str) -> None:
         """A call to the server failed and will be retried: remember since when, and why."""
@@ -357,17 +367,13 @@ class Worker:
             result = self._run(run_id, run)
             self._extend_until_reported(run_id)
             if not result.started:
-                self.error = self.error or SettingsError(result.error or "cannot start")
-                if not self._stops:  # one stop however many runs fail to start: a further
-                    self.stop()  # one would terminate the commands that did start
+                self._stop_once(SettingsError(result.error or "cannot start"))
                 return
             outcome, message = self._report(result)
         except OutputsMisfit as exc:
             # Every run of this command would be refused the same way: stop, as for a
             # command that cannot start, rather than spend the budget on failed runs.
-            self.error = self.error or exc
-            if not self._stops:
-                self.stop()
+            self._stop_once(exc)
         except ClientError as exc:
             if self.error is None:
                 self.error = exc

@@ -405,9 +405,23 @@ def find_mode(
     def negative(x: np.ndarray) -> tuple[float, np.ndarray]:
         pts = np.vstack([x, x + eye * h, x - eye * h])
         f = -log_prob(pts)
-        if not np.all(np.isfinite(f)):
-            return float(f[0]) if np.isfinite(f[0]) else 1e300, np.zeros(dim)
-        return float(f[0]), (f[1 : dim + 1] - f[dim + 1 :]) / (2 * h)
+        if not np.isfinite(f[0]):
+            return 1e300, np.zeros(dim)
+        up, down = f[1 : dim + 1], f[dim + 1 :]
+        # A step that leaves the support (a coordinate at its bound) gives way to the
+        # one-sided difference on the other side: a zero gradient there stopped the search
+        # for every coordinate, 0.45 sd short of the mode in a free one.
+        with np.errstate(invalid="ignore"):
+            grad = np.where(
+                np.isfinite(up) & np.isfinite(down),
+                (up - down) / (2 * h),
+                np.where(
+                    np.isfinite(up),
+                    (up - f[0]) / h,
+                    np.where(np.isfinite(down), (f[0] - down) / h, 0.0),
+                ),
+            )
+        return float(f[0]), grad
 
     limit = 1.0 - 1e-9
     bounds = [(-limit, limit) if b else (None, None) for b in bounded]

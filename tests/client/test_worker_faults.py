@@ -7,6 +7,7 @@ from __future__ import annotations
 import json
 import sys
 import threading
+import time
 from pathlib import Path
 from typing import Any
 
@@ -525,3 +526,35 @@ def test_a_lease_outlasts_the_stopping_of_a_timed_out_command(fake_server: Any, 
     assert "timed out" in failure["error"]
     # Every half second from 0.5 s to about 6.5 s; 2 would mean they stopped at 1.5 s.
     assert len(fake_server.bodies("PUT", f"{CAL}/runs/r1/lease")) >= 8
+
+
+def test_runs_that_meet_a_setup_error_together_stop_the_worker_once(monkeypatch: Any) -> None:
+    # Eight run threads meet a setup error at the same moment (every output refused for its
+    # shape): one stop, as a second would terminate the commands that did start. The stop
+    # itself is slowed down so that, unguarded, the threads would all pass the check first
+    # (1 trial in 8 stopped twice with 11 runs refused at once).
+    from types import SimpleNamespace
+
+    from honing.client.errors import SettingsError
+    from honing.client.worker import Worker, WorkerOptions
+
+    worker = Worker(SimpleNamespace(), "c1", WorkerOptions(command=["true"]))  # type: ignore[arg-type]
+    stop = worker.stop
+
+    def slow_stop() -> None:
+        time.sleep(0.01)
+        stop()
+
+    monkeypatch.setattr(worker, "stop", slow_stop)
+    barrier = threading.Barrier(8)
+
+    def meet() -> None:
+        barrier.wait()
+        worker._stop_once(SettingsError("outputs refused"))
+
+    threads = [threading.Thread(target=meet) for _ in range(8)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert worker.stops == 1 and str(worker.error) == "outputs refused"

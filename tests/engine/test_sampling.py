@@ -272,3 +272,20 @@ def test_a_chain_with_a_two_mode_proposal_shares_its_draws_by_the_modes_weights(
     for side, centre in ((chain.draws[:, 0] < 0, -6.0), (chain.draws[:, 0] > 0, 6.0)):
         assert abs(chain.draws[side, 0].mean() - centre) < 0.1
         assert abs(chain.draws[side, 0].std() - 1.0) < 0.1
+
+
+@pytest.mark.parametrize("start", [(-0.5, 0.8), (-0.9999995, 0.8), (0.4, 0.1)])
+def test_find_mode_polishes_the_free_coordinates_when_another_sits_at_its_bound(start):
+    # log p = -3 xi_1 - ((xi_2 - 0.3) / 0.1)^2 / 2 on xi_1 in [-1, 1]: the mode is (-1, 0.3),
+    # on the bound (as a log-uniform prior's 1/theta pushes a weakly informed parameter).
+    # A difference step past the bound used to zero the whole gradient, and the search
+    # stopped up to 0.45 sd short in xi_2. L-BFGS-B's stopping rule leaves ~1e-5 sd.
+    def log_prob(x: np.ndarray) -> np.ndarray:
+        out = -3.0 * x[:, 0] - 0.5 * ((x[:, 1] - 0.3) / 0.1) ** 2
+        return np.where(np.abs(x[:, 0]) <= 1.0, out, -np.inf)
+
+    mode = sampling.find_mode(
+        log_prob, np.array(start), np.array([0.3, 0.1]), np.array([True, False])
+    )
+    assert mode[0] == pytest.approx(-1.0, abs=1e-6)
+    assert abs(mode[1] - 0.3) / 0.1 < 1e-3

@@ -78,7 +78,7 @@ current folder. A non-zero exit, a missing or malformed outputs file, or a run l
 --run-timeout is reported as a failed run, with the end of COMMAND's stderr as the message.
 The first failure of each kind is printed with that message. A COMMAND that cannot start
 at all, or whose outputs are refused for their shape (an observation missing, misnamed or
-of the wrong length), stops the worker (exit 1) and reports nothing. While
+of the wrong length) or size, stops the worker (exit 1) and reports nothing. While
 COMMAND runs, its lease is extended, so a run may take longer than --lease-seconds; the
 extensions stop at --run-timeout or, without one, a day after the lease (a COMMAND that
 hangs then gives its point back): set --run-timeout for runs that can take longer.

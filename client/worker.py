@@ -407,8 +407,16 @@ class Worker:
                 self.client.report(cid, rid, outputs=result.outputs)
                 self._answered()
                 return "done", ""
-            except (ValidationFailed, PayloadTooLarge) as exc:
-                if isinstance(exc, ValidationFailed) and _misshapen(exc):
+            except PayloadTooLarge as exc:
+                # Outputs of the spec's lengths are the same size for every run: over the
+                # server's body limit for one, over it for all.
+                raise OutputsMisfit(
+                    f"the server refuses the command's outputs as too large ({exc}); every "
+                    "run would fail the same way, so nothing was reported: raise the server's "
+                    "body limit or shorten the observations"
+                ) from None
+            except ValidationFailed as exc:
+                if _misshapen(exc):
                     raise OutputsMisfit(
                         f"the server refuses the command's outputs ({exc}); every run would "
                         "fail the same way, so nothing was reported: make the command write "

@@ -53,13 +53,27 @@ def test_an_integer_beyond_floats_fails_the_run_and_the_worker_goes_on(
     assert len(put["error"]) < 200
 
 
-@pytest.mark.parametrize("status", [413, 422])
+def test_outputs_over_the_servers_body_limit_stop_the_worker(
+    fake_server: Any, cli: Any, one_line_error: Any
+) -> None:
+    # Outputs of the spec's lengths are the same size for every run: a 413 for one is a 413
+    # for all, so the worker stops (exit 1) instead of spending the budget on failed runs.
+    one_run_then(fake_server)
+    too_large = {"title": "Payload Too Large", "status": 413, "detail": "over 8 MiB"}
+    fake_server.on("PUT", f"{CAL}/runs/r1", too_large, status=413)
+    result = cli("worker", "c1", "-q", "--", *writes('{"y": [1]}'), url=fake_server.url, token="t")
+    assert result.returncode == 1
+    one_line_error(result, "outputs as too large", "Payload Too Large (413)")
+    assert len(fake_server.bodies("PUT", f"{CAL}/runs/r1")) == 1
+
+
+@pytest.mark.parametrize("status", [422])
 def test_a_refused_result_is_reported_as_a_short_failure(
     fake_server: Any, cli: Any, status: int
 ) -> None:
-    # 413: a body over the server's limit; 422 with a detail of 100,000 characters. Both
-    # become a failed run whose message fits the server's cap (65,536), and the worker
-    # goes on to exit 3 when the budget is spent.
+    # A 422 with a detail of 100,000 characters (and no field located in the outputs'
+    # shape) becomes a failed run whose message fits the server's cap (65,536), and the
+    # worker goes on to exit 3 when the budget is spent.
     one_run_then(fake_server)
     detail = "x" * 100_000
 

@@ -229,8 +229,7 @@ def start(spec: CalibrationSpec) -> EngineState:
     prior = np.column_stack([p.prior.sample(rng, PRIOR_DRAWS) for p in spec.parameters])
     # The prior's MAP: its highest-density draw, as the posterior's is (a flat prior has no
     # unique mode; any draw is one).
-    density = sum(p.prior.logpdf(prior[:, i]) for i, p in enumerate(spec.parameters))
-    mode = prior[int(np.argmax(density))]
+    mode = prior[int(np.argmax(_physical_log_prior(spec, prior)))]
     summary = {
         "round": 0,
         "runs_completed": 0,
@@ -503,6 +502,16 @@ def _to_physical(spec: CalibrationSpec, xi: np.ndarray) -> np.ndarray:
     ).reshape(xi.shape[0], spec.dim)
 
 
+def _physical_log_prior(spec: CalibrationSpec, theta: np.ndarray) -> np.ndarray:
+    """Log prior density of physical points ``(n, dim)``, summed over the parameters."""
+    return sum(p.prior.logpdf(theta[:, i]) for i, p in enumerate(spec.parameters))
+
+
+def _bounded(spec: CalibrationSpec) -> np.ndarray:
+    """Which reference coordinates are confined to [-1, 1] (uniform reference family)."""
+    return np.array([p.prior.family == "legendre" for p in spec.parameters])
+
+
 def _cov(x: np.ndarray) -> np.ndarray:
     d = x.shape[1]
     return np.cov(x, rowvar=False).reshape(d, d) + 1e-12 * np.eye(d)
@@ -632,10 +641,9 @@ def _initial_walkers(
     lp = log_post(candidates)
     finite = np.isfinite(lp)
     candidates, lp = candidates[finite], lp[finite]
-    bounded = np.array([p.prior.family == "legendre" for p in spec.parameters])
     modes = None
     if candidates.shape[0]:
-        modes = find_modes(log_post, candidates, lp, frame.scale, bounded)
+        modes = find_modes(log_post, candidates, lp, frame.scale, _bounded(spec))
     if modes is not None:
         ball = np.empty((0, spec.dim))
         for _ in range(50):
@@ -715,16 +723,11 @@ def _physical_mode(
     log_like = _log_likelihood(spec, surrogate, model_error, failures)
 
     def log_density(xi: np.ndarray) -> np.ndarray:
-        out = log_like(xi)
-        theta = _to_physical(spec, xi)
-        for i, p in enumerate(spec.parameters):
-            out = out + p.prior.logpdf(theta[:, i])
-        return out
+        return log_like(xi) + _physical_log_prior(spec, _to_physical(spec, xi))
 
     best = pool_xi[int(np.argmax(log_density(pool_xi)))]
-    bounded = np.array([p.prior.family == "legendre" for p in spec.parameters])
     scale = np.maximum(pool_xi.std(axis=0), 1e-12)
-    return find_mode(log_density, best, scale, bounded)
+    return find_mode(log_density, best, scale, _bounded(spec))
 
 
 def _predictive(

@@ -228,6 +228,10 @@ class Laplace:
     def draw(self, rng: np.random.Generator, n: int) -> np.ndarray:
         return self.mode + rng.standard_normal((n, self.mode.size)) @ self.chol.T
 
+    def distance2(self, x: np.ndarray) -> np.ndarray:
+        """Squared Mahalanobis distance of each point from the mode, shape ``(n,)``."""
+        return np.sum(np.linalg.solve(self.chol, (x - self.mode).T) ** 2, axis=0)
+
 
 @dataclass
 class Modes:
@@ -247,16 +251,7 @@ class Modes:
 
     def nearest(self, x: np.ndarray) -> np.ndarray:
         """Index of the mode each point is nearest to, in that mode's Mahalanobis metric."""
-        return np.argmin(self._distance2(x), axis=0)
-
-    def nearest_distance2(self, x: np.ndarray) -> np.ndarray:
-        """Squared Mahalanobis distance of each point to its nearest mode."""
-        return np.min(self._distance2(x), axis=0)
-
-    def _distance2(self, x: np.ndarray) -> np.ndarray:
-        return np.array(
-            [np.sum(np.linalg.solve(f.chol, (x - f.mode).T) ** 2, axis=0) for f in self.fits]
-        )
+        return np.argmin([f.distance2(x) for f in self.fits], axis=0)
 
 
 #: Most local searches for further modes after the first, each from the best candidate that
@@ -314,16 +309,20 @@ def find_modes(
     top = float(log_prob(first.mode[None, :])[0])
     radius2 = (MODE_RADII**2) * float(stats.chi2.ppf(0.99, candidates.shape[1]))
     eligible = order[log_probs[order] >= top - MODE_WINDOW]
+
+    def unexplained(x: np.ndarray) -> np.ndarray:
+        """Whether points lie beyond `MODE_RADII` 99% radii of every mode found so far."""
+        return np.min([f.distance2(x) for f in fits], axis=0) > radius2
+
     for _ in range(EXTRA_MODE_STARTS):
-        explained = Modes(fits, np.ones(len(fits))).nearest_distance2(candidates[eligible])
-        eligible = eligible[explained > radius2]
+        eligible = eligible[unexplained(candidates[eligible])]
         if eligible.size == 0:
             break
         fit = laplace_fit(log_prob, candidates[eligible[0]], scale, bounded)
         eligible = eligible[1:]
         if fit is None:
             continue
-        if Modes(fits, np.ones(len(fits))).nearest_distance2(fit.mode[None, :])[0] > radius2:
+        if unexplained(fit.mode[None, :])[0]:
             fits.append(fit)
     log_evidence = log_prob(np.array([f.mode for f in fits])) + np.array(
         [np.sum(np.log(np.diag(f.chol))) for f in fits]

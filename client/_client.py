@@ -164,9 +164,9 @@ class Client:
         self.token = token or os.environ.get("HONING_TOKEN") or None
         self.admin_key = admin_key or os.environ.get("HONING_ADMIN_KEY") or None
         self.retry = retry or RetryPolicy()
-        #: Called with what went wrong before each wait to retry a call (from the thread
-        #: making it), so that a long-lived caller can say why it is waiting.
-        self.on_retry: Callable[[str], None] | None = None
+        #: Since when (time.time) and why calls are being retried, or None once the server
+        #: answers: a long-lived caller can say why it is waiting.
+        self.trouble: tuple[float, str] | None = None
         self._cancelled = threading.Event()
         self._sleep = sleep or self._cancellable_sleep
         self._rng = random.Random()
@@ -421,9 +421,12 @@ class Client:
             else:
                 status = response.status_code
                 if status < 400:
+                    self.trouble = None
                     return response
                 hint = parse_retry_after(response.headers.get("Retry-After"))
                 retryable = status in (429, 503) or (status >= 500 and repeatable)
+                if not retryable:  # an answer, if a refusal: the server is there
+                    self.trouble = None
                 if last_try or not retryable or self._cancelled.is_set():
                     raise problem_from_response(response, hint)
                 wait = (
@@ -432,8 +435,7 @@ class Client:
                     else self.retry.delay(attempt, self._rng)
                 )
                 trouble = f"the server answers {status}"
-            if self.on_retry is not None:
-                self.on_retry(trouble)
+            self.trouble = (self.trouble[0] if self.trouble else time.time(), trouble)
             self._sleep(wait)
             if self._cancelled.is_set() and persistent:
                 raise ConnectionFailed(f"gave up waiting for {self.url}: cancelled")

@@ -232,9 +232,6 @@ class Worker:
         # run id -> when to extend its lease next, and until when to extend it at all
         self._extend_due: dict[str, tuple[float, float]] = {}
         self._extend_wake = threading.Event()  # a run joined the schedule, or the end came
-        # Since when and why calls are being retried (set from any thread, shown by `run`).
-        self._trouble: tuple[float, str] | None = None
-        client.on_retry = self._retrying
 
     @property
     def stops(self) -> int:
@@ -297,21 +294,9 @@ class Worker:
             if not self._stops:
                 self.stop()
 
-    def _retrying(self, why: str) -> None:
-        """A call to the server failed and will be retried: remember since when, and why."""
-        with self._lock:
-            since = self._trouble[0] if self._trouble else time.time()
-            self._trouble = (since, why)
-
-    def _answered(self) -> None:
-        """A call went through: whatever trouble there was is over."""
-        with self._lock:
-            self._trouble = None
-
     def _show_trouble(self) -> None:
-        with self._lock:
-            trouble = self._trouble
-        since, why = trouble if trouble else (None, "")
+        """Show whether, since when and why the client is retrying calls to the server."""
+        since, why = self.client.trouble or (None, "")
         self._update(trouble_since=since, trouble=why)
 
     def _lease(self, active: dict[str, threading.Thread]) -> float | None:
@@ -330,7 +315,6 @@ class Worker:
             self.error = exc
             return None
         self._outage.answered()
-        self._answered()
         self._update(status=lease.status)
         if self._stops and lease.runs:
             # Granted while the worker was stopping (the request was in flight or retrying):
@@ -405,7 +389,6 @@ class Worker:
         if result.outputs is not None:
             try:
                 self.client.report(cid, rid, outputs=result.outputs)
-                self._answered()
                 return "done", ""
             except PayloadTooLarge as exc:
                 # Outputs of the spec's lengths are the same size for every run: over the
@@ -432,7 +415,6 @@ class Worker:
             self.client.report(cid, rid, error=message)
         except Conflict:
             return "conflict", ""
-        self._answered()
         return "failed", message
 
     def _extend_until_reported(self, run_id: str) -> None:
@@ -550,7 +532,6 @@ class Worker:
             summary = self.client.posterior(self.calibration_id)
         except ClientError:
             return  # progress only: leasing and reporting surface real problems
-        self._answered()
         diagnostics = summary.get("diagnostics") or {}
         error = diagnostics.get("validation_error")
         self._update(

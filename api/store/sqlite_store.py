@@ -129,13 +129,18 @@ _UNAVAILABLE_CODES = frozenset(
 )
 
 
+#: Of those, the codes of a lock another connection holds.
 _BUSY_CODES = frozenset({sqlite3.SQLITE_BUSY, sqlite3.SQLITE_LOCKED})
 
 
+def _primary_code(exc: sqlite3.OperationalError) -> int:
+    """An error's primary SQLite result code (extended codes keep it in their low byte)."""
+    return int(getattr(exc, "sqlite_errorcode", 0)) & 0xFF
+
+
 def _unavailable(exc: sqlite3.OperationalError) -> bool:
-    """Whether an error says the file cannot be written now (extended codes included)."""
-    code = getattr(exc, "sqlite_errorcode", None)
-    return code is not None and code & 0xFF in _UNAVAILABLE_CODES
+    """Whether an error says the file cannot be written now."""
+    return _primary_code(exc) in _UNAVAILABLE_CODES
 
 
 def _rollback(db: sqlite3.Connection) -> None:
@@ -213,7 +218,7 @@ class SqliteStore:
             try:
                 db.execute("BEGIN IMMEDIATE")
             except sqlite3.OperationalError as exc:
-                busy = getattr(exc, "sqlite_errorcode", 0) & 0xFF in _BUSY_CODES
+                busy = _primary_code(exc) in _BUSY_CODES
                 raise StoreUnavailable(
                     f"sqlite {'busy' if busy else 'cannot write'}: {exc}"
                 ) from exc

@@ -203,6 +203,11 @@ def _result_json(
     return trust, _dumps({"outputs": normalised, "error": error, "trust": trust})
 
 
+def _missing(calibration_id: str) -> NotFound:
+    """The 404 for a calibration that does not exist (never created, deleted, or lost)."""
+    return NotFound(f"calibration {calibration_id!r} does not exist")
+
+
 def _settled(
     record: RunRecord,
     new_state: str,
@@ -278,7 +283,7 @@ class CalibrationService:
             return spec
         text = self.store.get_spec(calibration_id)
         if text is None:
-            raise NotFound(f"calibration {calibration_id!r} does not exist")
+            raise _missing(calibration_id)
         spec = CalibrationSpec.from_dict(json.loads(text), stored=True)
         with self._lock:
             self._specs[calibration_id] = spec
@@ -307,7 +312,7 @@ class CalibrationService:
             return cached
         loaded = self.store.load_state(meta.id)
         if loaded is None:
-            raise NotFound(f"calibration {meta.id!r} does not exist")
+            raise _missing(meta.id)
         version, blob = loaded
         state = state_from_bytes(blob)
         with self._lock:
@@ -357,7 +362,7 @@ class CalibrationService:
         if _CALIBRATION_ID.fullmatch(calibration_id):
             meta = self.store.get_meta(calibration_id)
         if meta is None:
-            raise NotFound(f"calibration {calibration_id!r} does not exist")
+            raise _missing(calibration_id)
         return meta
 
     async def authorize(self, calibration_id: str, token: str | None) -> str:
@@ -371,14 +376,14 @@ class CalibrationService:
         404 too rather than 401 or 403.
         """
         if not _CALIBRATION_ID.fullmatch(calibration_id):
-            raise NotFound(f"calibration {calibration_id!r} does not exist")
+            raise _missing(calibration_id)
         with self._lock:
             expected = self._token_hashes.get(calibration_id)
         cached = expected is not None
         if expected is None:
             meta = await self.store.get_meta_async(calibration_id)
             if meta is None:
-                raise NotFound(f"calibration {calibration_id!r} does not exist")
+                raise _missing(calibration_id)
             expected = meta.token_hash
             with self._lock:
                 self._token_hashes[calibration_id] = expected
@@ -389,7 +394,7 @@ class CalibrationService:
         except (Unauthorized, Forbidden):
             if cached and await self.store.get_meta_async(calibration_id) is None:
                 self._forget(calibration_id)
-                raise NotFound(f"calibration {calibration_id!r} does not exist") from None
+                raise _missing(calibration_id) from None
             raise
         return calibration_id
 
@@ -483,7 +488,7 @@ class CalibrationService:
     def delete(self, calibration_id: str) -> None:
         """Remove a calibration and all its runs."""
         if not self.store.delete(calibration_id):
-            raise NotFound(f"calibration {calibration_id!r} does not exist")
+            raise _missing(calibration_id)
         self._forget(calibration_id)
 
     # runs
@@ -498,7 +503,7 @@ class CalibrationService:
             calibration_id, count, worker, self.clock(), lease_seconds, spec.max_runs
         )
         if result.meta is None:
-            raise NotFound(f"calibration {calibration_id!r} does not exist")
+            raise _missing(calibration_id)
         status = self.status(result.meta)
         self._count("expired", result.expired)
         self._count("leased", len(result.runs))
@@ -569,7 +574,7 @@ class CalibrationService:
                 if await self.store.get_meta_async(calibration_id) is None:
                     # Gone while the result was on its way (deleted, or the store lost it):
                     # say so, rather than that the run does not exist.
-                    raise NotFound(f"calibration {calibration_id!r} does not exist")
+                    raise _missing(calibration_id)
                 raise NotFound(f"run {run_id!r} does not exist in calibration {calibration_id!r}")
             if record.state in ("done", "failed"):
                 outcome = _settled(record, new_state, normalised, error)
@@ -625,7 +630,7 @@ class CalibrationService:
             return 0
         ids = self.store.import_runs(calibration_id, items, self.clock())
         if not ids:
-            raise NotFound(f"calibration {calibration_id!r} does not exist")
+            raise _missing(calibration_id)
         self._count("imported", len(ids))
         self.schedule_refit(calibration_id)
         return len(ids)
